@@ -1,0 +1,195 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"syscall"
+	"time"
+
+	"hindcast/fleet"
+	"hindcast/pipeline"
+)
+
+// benchConfig is the benchmark fleet's config: the two embodiments of the
+// peer job (../shared/peer/README.md) and its goals (2 future, 1 geometric
+// with γ = 0.99, 1 final, no negatives).
+const benchConfig = `dataset: bench-fleet
+source:
+  uri: logs
+work: work
+output: datasets
+partitions: 8
+seed: 7
+embodiments:
+  picker6:
+    obs: 10
+    act: 7
+    obs_low: -10
+    obs_high: 10
+    goal_dims: [7, 8, 9]
+    goal_tolerance: 0.03
+  cart2:
+    obs: 5
+    act: 2
+    obs_low: -10
+    obs_high: 10
+    goal_dims: [0, 1]
+    goal_tolerance: 0.25
+episodes:
+  max_gap: 500ms
+  min_steps: 10
+  max_steps: 500
+goals:
+  future: 2
+  geometric: 1
+  final: 1
+  negative: 0
+  gamma: 0.99
+splits: {train: 0.8, val: 0.1, test: 0.1}
+float: float32
+parquet:
+  compression: zstd
+`
+
+// timing is one timed child process.
+type timing struct {
+	wall   time.Duration
+	maxRSS int64 // bytes
+}
+
+// timeChild runs a command to completion and returns its wall time and peak
+// resident set size (getrusage of the child).
+func timeChild(ctx context.Context, stderr io.Writer, name string, args ...string) (timing, error) {
+	cmd := exec.CommandContext(ctx, name, args...)
+	cmd.Stdout = io.Discard
+	cmd.Stderr = stderr
+	start := time.Now()
+	if err := cmd.Run(); err != nil {
+		return timing{}, fmt.Errorf("%s: %w", name, err)
+	}
+	t := timing{wall: time.Since(start)}
+	if ru, ok := cmd.ProcessState.SysUsage().(*syscall.Rusage); ok {
+		t.maxRSS = ru.Maxrss * 1024 // Linux reports kilobytes
+	}
+	return t, nil
+}
+
+func median(ds []time.Duration) time.Duration {
+	s := append([]time.Duration(nil), ds...)
+	sort.Slice(s, func(i, j int) bool { return s[i] < s[j] })
+	return s[len(s)/2]
+}
+
+func benchCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	dir, err := filepath.Abs(c.Dir)
+	if err != nil {
+		return err
+	}
+	logs := filepath.Join(dir, "logs")
+	stamp := filepath.Join(dir, "fleet.json")
+	var meta struct {
+		Frames, Written int
+		Bytes           int64
+		Zst             bool
+	}
+	if b, err := os.ReadFile(stamp); err == nil && json.Unmarshal(b, &meta) == nil && meta.Frames == c.Frames && meta.Zst == c.Compress {
+		fmt.Fprintf(stdout, "reusing benchmark fleet in %s (%d frames, %.1f MB)\n", logs, meta.Written, float64(meta.Bytes)/1e6)
+	} else {
+		os.RemoveAll(logs)
+		start := time.Now()
+		n, bytes, err := fleet.Bench(logs, fleet.BenchOptions{Frames: c.Frames, Seed: 1, Compress: c.Compress})
+		if err != nil {
+			return fmt.Errorf("write benchmark fleet: %w", err)
+		}
+		meta.Frames, meta.Written, meta.Bytes, meta.Zst = c.Frames, n, bytes, c.Compress
+		b, _ := json.Marshal(meta)
+		if err := os.WriteFile(stamp, b, 0o644); err != nil {
+			return err
+		}
+		fmt.Fprintf(stdout, "wrote benchmark fleet: %d frames, %.1f MB in %.1fs\n", n, float64(bytes)/1e6, time.Since(start).Seconds())
+	}
+	cfgPath := filepath.Join(dir, "bench.yaml")
+	if err := os.WriteFile(cfgPath, []byte(benchConfig), 0o644); err != nil {
+		return err
+	}
+	self, err := os.Executable()
+	if err != nil {
+		return err
+	}
+	var ours, peers []time.Duration
+	var rss, peerRSS int64
+	var last *pipeline.Manifest
+	for i := range c.Runs {
+		for _, sub := range []string{"work", "datasets", "peer-out"} {
+			os.RemoveAll(filepath.Join(dir, sub))
+		}
+		version := "bench-" + strconv.Itoa(i)
+		t, err := timeChild(ctx, ui.w, self, "run", "--config", cfgPath, "--version", version, "--parallel", strconv.Itoa(c.Parallel))
+		if err != nil {
+			return err
+		}
+		ours = append(ours, t.wall)
+		rss = max(rss, t.maxRSS)
+		b, err := os.ReadFile(filepath.Join(dir, "datasets", "bench-fleet", version, pipeline.ManifestName))
+		if err != nil {
+			return err
+		}
+		last = &pipeline.Manifest{}
+		if err := json.Unmarshal(b, last); err != nil {
+			return err
+		}
+		fmt.Fprintf(stdout, "run %d: hindcast %.2fs, peak RSS %.0f MiB\n", i+1, t.wall.Seconds(), float64(t.maxRSS)/(1<<20))
+		if c.Peer != "" {
+			out := filepath.Join(dir, "peer-out")
+			if err := os.MkdirAll(out, 0o755); err != nil {
+				return err
+			}
+			pt, err := timeChild(ctx, ui.w, c.Peer, "-f", peerSQL(c.Peer), "SRC="+logs, "OUT="+out)
+			if err != nil {
+				return err
+			}
+			peers = append(peers, pt.wall)
+			peerRSS = max(peerRSS, pt.maxRSS)
+			fmt.Fprintf(stdout, "run %d: peer     %.2fs, peak RSS %.0f MiB\n", i+1, pt.wall.Seconds(), float64(pt.maxRSS)/(1<<20))
+		}
+	}
+	med := median(ours).Seconds()
+	f := last.Funnel
+	fmt.Fprintf(stdout, "\nhindcast, median of %d runs, --parallel %d: %.2fs\n", c.Runs, c.Parallel, med)
+	fmt.Fprintf(stdout, "  frames/s   %.0f (%d frames)\n", float64(f.Frames)/med, f.Frames)
+	fmt.Fprintf(stdout, "  input MB/s %.1f (%.1f MB)\n", float64(meta.Bytes)/1e6/med, float64(meta.Bytes)/1e6)
+	fmt.Fprintf(stdout, "  pairs/s    %.0f (%d pairs)\n", float64(f.Pairs)/med, f.Pairs)
+	fmt.Fprintf(stdout, "  peak RSS   %.0f MiB (largest of the runs)\n", float64(rss)/(1<<20))
+	for _, s := range last.Stages {
+		fmt.Fprintf(stdout, "  stage %-9s %.2fs (last run)\n", s.Name, s.Seconds)
+	}
+	if len(peers) > 0 {
+		pm := median(peers).Seconds()
+		fmt.Fprintf(stdout, "peer, median of %d runs: %.2fs, peak RSS %.0f MiB\n", len(peers), pm, float64(peerRSS)/(1<<20))
+		fmt.Fprintf(stdout, "ratio peer/hindcast (medians): %.2fx\n", pm/med)
+	}
+	return nil
+}
+
+// peerSQL finds job.sql beside the peer binary, or in ../shared/peer.
+func peerSQL(bin string) string {
+	if p := filepath.Join(filepath.Dir(bin), "job.sql"); fileExists(p) {
+		return p
+	}
+	if p, err := filepath.Abs(filepath.Join("..", "shared", "peer", "job.sql")); err == nil {
+		return p
+	}
+	return "job.sql"
+}
+
+func fileExists(p string) bool {
+	_, err := os.Stat(p)
+	return err == nil
+}

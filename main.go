@@ -1,0 +1,240 @@
+// Command hindcast turns fleet logs in object storage into goal-conditioned
+// training shards for offline reinforcement learning. See README.md.
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"os/signal"
+	"path/filepath"
+	"runtime"
+	"runtime/debug"
+	"syscall"
+
+	"github.com/mattn/go-isatty"
+
+	"hindcast/fleet"
+	"hindcast/pipeline"
+	"hindcast/stages"
+)
+
+// Exit codes (SPEC §6).
+const (
+	exitOK      = 0
+	exitRuntime = 1
+	exitUsage   = 2
+)
+
+// usageError is a command-line or config problem: exit code 2.
+type usageError struct{ err error }
+
+func (e usageError) Error() string { return e.err.Error() }
+func (e usageError) Unwrap() error { return e.err }
+
+// Command is a parsed command line: the command's name and its flag values.
+// Parsing is kept apart from running so that cluster manifests can be checked
+// against the same parser.
+type Command struct {
+	Name     string
+	Config   string
+	Version  string
+	Parallel int
+	Dir      string
+	Frames   int
+	Runs     int
+	Peer     string
+	Compress bool
+	Help     bool
+}
+
+type commandSpec struct {
+	summary string
+	flags   func(fs *flag.FlagSet, c *Command)
+}
+
+func commands() map[string]commandSpec {
+	parallel := func(fs *flag.FlagSet, c *Command) {
+		fs.IntVar(&c.Parallel, "parallel", runtime.NumCPU(), "work items processed at once (never changes the output)")
+	}
+	return map[string]commandSpec{
+		"run": {"run every stage and commit a dataset version", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
+			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
+			parallel(fs, c)
+		}},
+		"demo": {"write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
+			parallel(fs, c)
+		}},
+		"bench": {"generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Dir, "dir", ".hindcast/bench", "folder for the benchmark fleet and its outputs")
+			fs.IntVar(&c.Frames, "frames", 1000000, "frames in the benchmark fleet")
+			fs.IntVar(&c.Runs, "runs", 3, "timed runs (the median is reported)")
+			fs.StringVar(&c.Peer, "peer", "", "peer job binary to time on the same files, alternating with hindcast")
+			fs.BoolVar(&c.Compress, "zst", false, "write the fleet as .jsonl.zst objects")
+			parallel(fs, c)
+		}},
+	}
+}
+
+const topUsage = `hindcast turns fleet logs into goal-conditioned training shards.
+
+Usage:
+  hindcast run --config FILE [--version V] [--parallel N]
+  hindcast demo [--dir DIR]
+  hindcast bench [--frames N] [--runs K] [--peer BIN]
+
+Run "hindcast COMMAND --help" for a command's flags.
+Exit codes: 0 success, 1 runtime failure, 2 usage or config error.
+`
+
+// ParseCommand parses a hindcast command line (without the program name).
+func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
+	if len(args) == 0 {
+		return nil, usageError{errors.New("no command given")}
+	}
+	if args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
+		return &Command{Name: "help", Help: true}, nil
+	}
+	spec, ok := commands()[args[0]]
+	if !ok {
+		return nil, usageError{fmt.Errorf("unknown command %q", args[0])}
+	}
+	c := &Command{Name: args[0]}
+	fs := flag.NewFlagSet("hindcast "+args[0], flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	spec.flags(fs, c)
+	fs.Usage = func() {
+		fmt.Fprintf(stderr, "hindcast %s: %s\n\nFlags:\n", args[0], spec.summary)
+		fs.PrintDefaults()
+	}
+	if err := fs.Parse(args[1:]); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			c.Help = true
+			return c, nil
+		}
+		return nil, usageError{err}
+	}
+	if fs.NArg() > 0 {
+		return nil, usageError{fmt.Errorf("%s: unexpected argument %q", c.Name, fs.Arg(0))}
+	}
+	if c.Name == "run" && c.Config == "" {
+		return nil, usageError{errors.New("run: --config is required")}
+	}
+	if c.Parallel < 1 {
+		return nil, usageError{fmt.Errorf("%s: --parallel must be at least 1", c.Name)}
+	}
+	return c, nil
+}
+
+func main() {
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	code := Main(ctx, os.Args[1:], os.Stdout, os.Stderr)
+	stop()
+	os.Exit(code)
+}
+
+// Main runs one command line and returns its exit code.
+func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	c, err := ParseCommand(args, stderr)
+	if err != nil {
+		fmt.Fprintf(stderr, "hindcast: %v\n\n%s", err, topUsage)
+		return exitUsage
+	}
+	if c.Help {
+		if c.Name == "help" {
+			fmt.Fprint(stdout, topUsage)
+		}
+		return exitOK
+	}
+	ui := newUI(stderr)
+	switch c.Name {
+	case "run":
+		err = runCommand(ctx, c, stdout, ui)
+	case "demo":
+		err = demoCommand(ctx, c, stdout, ui)
+	case "bench":
+		err = benchCommand(ctx, c, stdout, ui)
+	}
+	if err == nil {
+		return exitOK
+	}
+	fmt.Fprintf(stderr, "hindcast %s: %v\n", c.Name, err)
+	var ue usageError
+	var ce *pipeline.ConfigError
+	if errors.As(err, &ue) || errors.As(err, &ce) {
+		return exitUsage
+	}
+	return exitRuntime
+}
+
+func toolInfo() pipeline.ToolInfo {
+	t := pipeline.ToolInfo{Version: pipeline.ToolVersion, Commit: "unknown"}
+	if bi, ok := debug.ReadBuildInfo(); ok {
+		for _, s := range bi.Settings {
+			if s.Key == "vcs.revision" && s.Value != "" {
+				t.Commit = s.Value
+			}
+		}
+	}
+	return t
+}
+
+// runConfig loads the config and runs the pipeline on it.
+func runConfig(ctx context.Context, path, version string, parallel int, stdout io.Writer, ui *ui) (*pipeline.Manifest, error) {
+	cfg, err := pipeline.LoadConfig(path)
+	if err != nil {
+		return nil, err
+	}
+	if version != "" {
+		if err := pipeline.ValidVersion(version); err != nil {
+			return nil, usageError{err}
+		}
+	}
+	ui.log.Info("run", "config", path, "dataset", cfg.Dataset, "source", cfg.Source.URI, "parallel", parallel)
+	m, err := pipeline.Execute(ctx, cfg, stages.All(), pipeline.Options{
+		Version: version, Parallel: parallel, Log: ui.log, Progress: ui.progress(), Tool: toolInfo(),
+	})
+	if err != nil {
+		return nil, err
+	}
+	printSummary(stdout, m, pipeline.JoinURI(cfg.Output, pipeline.VersionPrefix(m.Dataset, m.Version)))
+	return m, nil
+}
+
+func runCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	_, err := runConfig(ctx, c.Config, c.Version, c.Parallel, stdout, ui)
+	return err
+}
+
+func demoCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	dir, err := filepath.Abs(c.Dir)
+	if err != nil {
+		return err
+	}
+	if err := fleet.Demo(dir); err != nil {
+		return fmt.Errorf("write demo fleet in %s: %w", dir, err)
+	}
+	fmt.Fprintf(stdout, "demo fleet of Larkspur Depot written to %s\n", filepath.Join(dir, "logs"))
+	_, err = runConfig(ctx, filepath.Join(dir, "hindcast.yaml"), "", c.Parallel, stdout, ui)
+	return err
+}
+
+// newLogger logs JSON lines (log/slog) for machines, or nothing on a terminal
+// where the progress lines speak instead.
+func newLogger(w io.Writer, tty bool) *slog.Logger {
+	if tty {
+		return slog.New(slog.DiscardHandler)
+	}
+	return slog.New(slog.NewJSONHandler(w, nil))
+}
+
+func isTTY(w io.Writer) bool {
+	f, ok := w.(*os.File)
+	return ok && (isatty.IsTerminal(f.Fd()) || isatty.IsCygwinTerminal(f.Fd()))
+}

@@ -1,0 +1,104 @@
+package pipeline
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"regexp"
+	"time"
+)
+
+var versionPattern = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
+
+// ValidVersion checks a version name (SPEC §6).
+func ValidVersion(v string) error {
+	if !versionPattern.MatchString(v) || v == "." || v == ".." {
+		return fmt.Errorf("version %q: want 1–64 of A-Za-z0-9._-", v)
+	}
+	return nil
+}
+
+// DefaultVersion is the UTC time as YYYYMMDDTHHMMSSZ.
+func DefaultVersion(now time.Time) string { return now.UTC().Format("20060102T150405Z") }
+
+// ManifestName is the file whose presence makes a version exist.
+const ManifestName = "manifest.json"
+
+// VersionPrefix is a version's folder in the output store.
+func VersionPrefix(dataset, version string) string { return dataset + "/" + version + "/" }
+
+// ErrVersionExists is returned when committing a version that already exists.
+var ErrVersionExists = errors.New("version already exists")
+
+// Commit publishes the packed shards into output/<dataset>/<version>/ and
+// writes the manifest last, with an exclusive write, so that the version
+// exists only once it is complete and an existing version is never replaced.
+func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) error {
+	prefix := VersionPrefix(m.Dataset, m.Version)
+	if _, err := out.Stat(ctx, prefix+ManifestName); err == nil {
+		return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), ErrVersionExists)
+	} else if !errors.Is(err, ErrNotFound) {
+		return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), err)
+	}
+	for _, s := range res.Sealed[StagePack] {
+		var p PackSummary
+		if err := json.Unmarshal(s.Summary, &p); err != nil {
+			return fmt.Errorf("commit: pack %s: %w", s.Item.ID, err)
+		}
+		for _, f := range p.Files {
+			if err := publish(ctx, work, f.Work, out, prefix+f.Path, f.SHA256); err != nil {
+				return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+f.Path), err)
+			}
+		}
+	}
+	b, err := json.MarshalIndent(m, "", "  ")
+	if err != nil {
+		return fmt.Errorf("commit: manifest: %w", err)
+	}
+	if err := Put(ctx, out, prefix+ManifestName, append(b, '\n'), true); err != nil {
+		if errors.Is(err, ErrExists) {
+			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), ErrVersionExists)
+		}
+		return err
+	}
+	return nil
+}
+
+// Linker is implemented by stores that can publish another store's object
+// without copying its bytes (hard links between local folders).
+type Linker interface {
+	Link(ctx context.Context, from Store, fromKey, key string) error
+}
+
+// publish copies one shard, checking on the way that its bytes are still
+// the ones pack recorded.
+func publish(ctx context.Context, work Store, from string, out Store, to, sha string) error {
+	if l, ok := out.(Linker); ok {
+		if err := l.Link(ctx, work, from, to); err == nil {
+			return nil
+		}
+	}
+	r, err := work.Open(ctx, from, 0)
+	if err != nil {
+		return err
+	}
+	defer r.Close()
+	up, err := out.Create(ctx, to)
+	if err != nil {
+		return err
+	}
+	h := sha256.New()
+	if _, err := io.Copy(io.MultiWriter(up, h), r); err != nil {
+		up.Abort()
+		return err
+	}
+	if got := hex.EncodeToString(h.Sum(nil)); got != sha {
+		up.Abort()
+		return fmt.Errorf("%s changed since pack: sha256 %s, recorded %s", JoinURI(work.URI(), from), got, sha)
+	}
+	return up.Commit(false)
+}

@@ -1,0 +1,500 @@
+package pipeline
+
+import (
+	"bufio"
+	"container/heap"
+	"context"
+	"fmt"
+	"io"
+	"strings"
+
+	"github.com/apache/arrow-go/v18/arrow"
+	"github.com/apache/arrow-go/v18/arrow/array"
+	"github.com/apache/arrow-go/v18/arrow/ipc"
+	"github.com/apache/arrow-go/v18/arrow/memory"
+
+	"hindcast/schemas"
+)
+
+// Intermediates between stages are Arrow IPC streams: a columnar format any
+// Arrow tool can open when a stage's output needs looking at, read and written
+// in record batches so no stage holds more than a batch per open stream.
+
+// batchRows and batchBytes bound one record batch: rows for vectors, bytes for
+// frames that carry camera images.
+const (
+	batchRows  = 4096
+	batchBytes = 8 << 20
+)
+
+// FrameWriter appends frames to an Arrow IPC stream.
+type FrameWriter struct {
+	bw    *bufio.Writer
+	w     *ipc.Writer
+	b     *array.RecordBuilder
+	rows  int
+	bytes int
+	total int64
+
+	unit, emb, src, task, episode *array.StringBuilder
+	t, line                       *array.Int64Builder
+	obs, act, imgRef, img         *array.ListBuilder
+	obsV, actV                    *array.Float64Builder
+	imgRefV                       *array.StringBuilder
+	imgV                          *array.BinaryBuilder
+	ev                            *array.Int8Builder
+	success, last                 *array.BooleanBuilder
+	step                          *array.Int32Builder
+}
+
+// NewFrameWriter starts a frame stream on w.
+func NewFrameWriter(w io.Writer) *FrameWriter {
+	bw := bufio.NewWriterSize(w, 1<<20)
+	b := array.NewRecordBuilder(memory.DefaultAllocator, schemas.FrameArrow)
+	fw := &FrameWriter{bw: bw, w: ipc.NewWriter(bw, ipc.WithSchema(schemas.FrameArrow)), b: b}
+	fw.unit = b.Field(0).(*array.StringBuilder)
+	fw.emb = b.Field(1).(*array.StringBuilder)
+	fw.t = b.Field(2).(*array.Int64Builder)
+	fw.src = b.Field(3).(*array.StringBuilder)
+	fw.line = b.Field(4).(*array.Int64Builder)
+	fw.obs = b.Field(5).(*array.ListBuilder)
+	fw.obsV = fw.obs.ValueBuilder().(*array.Float64Builder)
+	fw.act = b.Field(6).(*array.ListBuilder)
+	fw.actV = fw.act.ValueBuilder().(*array.Float64Builder)
+	fw.ev = b.Field(7).(*array.Int8Builder)
+	fw.task = b.Field(8).(*array.StringBuilder)
+	fw.success = b.Field(9).(*array.BooleanBuilder)
+	fw.imgRef = b.Field(10).(*array.ListBuilder)
+	fw.imgRefV = fw.imgRef.ValueBuilder().(*array.StringBuilder)
+	fw.img = b.Field(11).(*array.ListBuilder)
+	fw.imgV = fw.img.ValueBuilder().(*array.BinaryBuilder)
+	fw.episode = b.Field(12).(*array.StringBuilder)
+	fw.step = b.Field(13).(*array.Int32Builder)
+	fw.last = b.Field(14).(*array.BooleanBuilder)
+	return fw
+}
+
+// Write appends one frame.
+func (fw *FrameWriter) Write(f *schemas.Frame) error {
+	fw.unit.Append(f.Unit)
+	fw.emb.Append(f.Embodiment)
+	fw.t.Append(f.T)
+	fw.src.Append(f.Src)
+	fw.line.Append(f.Line)
+	fw.obs.Append(true)
+	fw.obsV.AppendValues(f.Obs, nil)
+	if f.HasAct {
+		fw.act.Append(true)
+		fw.actV.AppendValues(f.Act, nil)
+	} else {
+		fw.act.AppendNull()
+	}
+	fw.ev.Append(int8(f.Ev))
+	if f.HasTask {
+		fw.task.Append(f.Task)
+	} else {
+		fw.task.AppendNull()
+	}
+	if f.HasSuccess {
+		fw.success.Append(f.Success)
+	} else {
+		fw.success.AppendNull()
+	}
+	fw.imgRef.Append(true)
+	fw.img.Append(true)
+	n := 0
+	for i, r := range f.ImgRef {
+		fw.imgRefV.Append(r)
+		fw.imgV.Append(f.Img[i])
+		n += len(f.Img[i])
+	}
+	fw.episode.Append(f.Episode)
+	fw.step.Append(f.Step)
+	fw.last.Append(f.Last)
+	fw.rows++
+	fw.total++
+	fw.bytes += n + 8*(len(f.Obs)+len(f.Act)) + 64
+	if fw.rows >= batchRows || fw.bytes >= batchBytes {
+		return fw.flush()
+	}
+	return nil
+}
+
+// Rows is the number of frames written so far.
+func (fw *FrameWriter) Rows() int64 { return fw.total }
+
+func (fw *FrameWriter) flush() error {
+	if fw.rows == 0 {
+		return nil
+	}
+	rec := fw.b.NewRecordBatch()
+	defer rec.Release()
+	fw.rows, fw.bytes = 0, 0
+	return fw.w.Write(rec)
+}
+
+// Close flushes the last batch and ends the stream; it does not close the
+// underlying writer.
+func (fw *FrameWriter) Close() error {
+	defer fw.b.Release()
+	if err := fw.flush(); err != nil {
+		return err
+	}
+	if err := fw.w.Close(); err != nil {
+		return err
+	}
+	return fw.bw.Flush()
+}
+
+// FrameReader reads frames from an Arrow IPC stream one at a time.
+type FrameReader struct {
+	r   *ipc.Reader
+	rec arrow.RecordBatch
+	i   int
+	n   int
+
+	unit, emb, src, task, episode *array.String
+	t, line                       *array.Int64
+	obs, act, imgRef, img         *array.List
+	obsV, actV                    *array.Float64
+	imgRefV                       *array.String
+	imgV                          *array.Binary
+	ev                            *array.Int8
+	success, last                 *array.Boolean
+	step                          *array.Int32
+}
+
+// NewFrameReader starts reading a frame stream.
+func NewFrameReader(r io.Reader) (*FrameReader, error) {
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.FrameArrow))
+	if err != nil {
+		return nil, err
+	}
+	return &FrameReader{r: ir}, nil
+}
+
+// Next reads the next frame into f (reusing its slices); it returns false at
+// the end of the stream or on an error (see Err).
+func (fr *FrameReader) Next(f *schemas.Frame) bool {
+	for fr.i >= fr.n {
+		if !fr.r.Next() {
+			return false
+		}
+		fr.bind(fr.r.RecordBatch())
+	}
+	i := fr.i
+	fr.i++
+	f.Unit = sameOrClone(f.Unit, fr.unit.Value(i))
+	f.Embodiment = sameOrClone(f.Embodiment, fr.emb.Value(i))
+	f.T = fr.t.Value(i)
+	f.Src = sameOrClone(f.Src, fr.src.Value(i))
+	f.Line = fr.line.Value(i)
+	s, e := fr.obs.ValueOffsets(i)
+	f.Obs = append(f.Obs[:0], fr.obsV.Float64Values()[s:e]...)
+	f.HasAct = fr.act.IsValid(i)
+	f.Act = f.Act[:0]
+	if f.HasAct {
+		s, e = fr.act.ValueOffsets(i)
+		f.Act = append(f.Act, fr.actV.Float64Values()[s:e]...)
+	}
+	f.Ev = schemas.Event(fr.ev.Value(i))
+	f.HasTask = fr.task.IsValid(i)
+	f.Task = ""
+	if f.HasTask {
+		f.Task = sameOrClone(f.Task, fr.task.Value(i))
+	}
+	f.HasSuccess = fr.success.IsValid(i)
+	f.Success = f.HasSuccess && fr.success.Value(i)
+	s, e = fr.imgRef.ValueOffsets(i)
+	f.ImgRef = f.ImgRef[:0]
+	f.Img = f.Img[:0]
+	for j := s; j < e; j++ {
+		f.ImgRef = append(f.ImgRef, strings.Clone(fr.imgRefV.Value(int(j))))
+		f.Img = append(f.Img, append([]byte(nil), fr.imgV.Value(int(j))...))
+	}
+	f.Episode = sameOrClone(f.Episode, fr.episode.Value(i))
+	f.Step = fr.step.Value(i)
+	f.Last = fr.last.Value(i)
+	return true
+}
+
+// sameOrClone returns old when it already holds v (the common case: the unit
+// repeats row after row) and a copy of v otherwise, so frames never point into
+// a record batch that the reader is about to drop.
+func sameOrClone(old, v string) string {
+	if old == v {
+		return old
+	}
+	return strings.Clone(v)
+}
+
+func (fr *FrameReader) bind(rec arrow.RecordBatch) {
+	fr.rec = rec
+	fr.i, fr.n = 0, int(rec.NumRows())
+	fr.unit = rec.Column(0).(*array.String)
+	fr.emb = rec.Column(1).(*array.String)
+	fr.t = rec.Column(2).(*array.Int64)
+	fr.src = rec.Column(3).(*array.String)
+	fr.line = rec.Column(4).(*array.Int64)
+	fr.obs = rec.Column(5).(*array.List)
+	fr.obsV = fr.obs.ListValues().(*array.Float64)
+	fr.act = rec.Column(6).(*array.List)
+	fr.actV = fr.act.ListValues().(*array.Float64)
+	fr.ev = rec.Column(7).(*array.Int8)
+	fr.task = rec.Column(8).(*array.String)
+	fr.success = rec.Column(9).(*array.Boolean)
+	fr.imgRef = rec.Column(10).(*array.List)
+	fr.imgRefV = fr.imgRef.ListValues().(*array.String)
+	fr.img = rec.Column(11).(*array.List)
+	fr.imgV = fr.img.ListValues().(*array.Binary)
+	fr.episode = rec.Column(12).(*array.String)
+	fr.step = rec.Column(13).(*array.Int32)
+	fr.last = rec.Column(14).(*array.Boolean)
+}
+
+// Err is the first read error, if any.
+func (fr *FrameReader) Err() error { return fr.r.Err() }
+
+// Release frees the reader's buffers.
+func (fr *FrameReader) Release() { fr.r.Release() }
+
+// GoalWriter appends goals to an Arrow IPC stream.
+type GoalWriter struct {
+	bw   *bufio.Writer
+	w    *ipc.Writer
+	b    *array.RecordBuilder
+	rows int
+
+	episode, goalEpisode    *array.StringBuilder
+	step, goalStep, goalOff *array.Int32Builder
+	strategy                *array.Int8Builder
+	goal                    *array.ListBuilder
+	goalV                   *array.Float64Builder
+	reward                  *array.Float32Builder
+}
+
+// NewGoalWriter starts a goal stream on w.
+func NewGoalWriter(w io.Writer) *GoalWriter {
+	bw := bufio.NewWriterSize(w, 1<<20)
+	b := array.NewRecordBuilder(memory.DefaultAllocator, schemas.GoalArrow)
+	gw := &GoalWriter{bw: bw, w: ipc.NewWriter(bw, ipc.WithSchema(schemas.GoalArrow)), b: b}
+	gw.episode = b.Field(0).(*array.StringBuilder)
+	gw.step = b.Field(1).(*array.Int32Builder)
+	gw.strategy = b.Field(2).(*array.Int8Builder)
+	gw.goalEpisode = b.Field(3).(*array.StringBuilder)
+	gw.goalStep = b.Field(4).(*array.Int32Builder)
+	gw.goalOff = b.Field(5).(*array.Int32Builder)
+	gw.goal = b.Field(6).(*array.ListBuilder)
+	gw.goalV = gw.goal.ValueBuilder().(*array.Float64Builder)
+	gw.reward = b.Field(7).(*array.Float32Builder)
+	return gw
+}
+
+// Write appends one goal.
+func (gw *GoalWriter) Write(g *schemas.Goal) error {
+	gw.episode.Append(g.Episode)
+	gw.step.Append(g.Step)
+	gw.strategy.Append(int8(g.Strategy))
+	gw.goalEpisode.Append(g.GoalEpisode)
+	gw.goalStep.Append(g.GoalStep)
+	gw.goalOff.Append(g.GoalOffset)
+	gw.goal.Append(true)
+	gw.goalV.AppendValues(g.Goal, nil)
+	gw.reward.Append(g.Reward)
+	gw.rows++
+	if gw.rows >= 4*batchRows {
+		return gw.flush()
+	}
+	return nil
+}
+
+func (gw *GoalWriter) flush() error {
+	if gw.rows == 0 {
+		return nil
+	}
+	rec := gw.b.NewRecordBatch()
+	defer rec.Release()
+	gw.rows = 0
+	return gw.w.Write(rec)
+}
+
+// Close flushes and ends the stream; it does not close the underlying writer.
+func (gw *GoalWriter) Close() error {
+	defer gw.b.Release()
+	if err := gw.flush(); err != nil {
+		return err
+	}
+	if err := gw.w.Close(); err != nil {
+		return err
+	}
+	return gw.bw.Flush()
+}
+
+// GoalReader reads goals from an Arrow IPC stream one at a time.
+type GoalReader struct {
+	r    *ipc.Reader
+	i, n int
+
+	episode, goalEpisode    *array.String
+	step, goalStep, goalOff *array.Int32
+	strategy                *array.Int8
+	goal                    *array.List
+	goalV                   *array.Float64
+	reward                  *array.Float32
+}
+
+// NewGoalReader starts reading a goal stream.
+func NewGoalReader(r io.Reader) (*GoalReader, error) {
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.GoalArrow))
+	if err != nil {
+		return nil, err
+	}
+	return &GoalReader{r: ir}, nil
+}
+
+// Next reads the next goal into g; false at the end or on error (see Err).
+func (gr *GoalReader) Next(g *schemas.Goal) bool {
+	for gr.i >= gr.n {
+		if !gr.r.Next() {
+			return false
+		}
+		rec := gr.r.RecordBatch()
+		gr.i, gr.n = 0, int(rec.NumRows())
+		gr.episode = rec.Column(0).(*array.String)
+		gr.step = rec.Column(1).(*array.Int32)
+		gr.strategy = rec.Column(2).(*array.Int8)
+		gr.goalEpisode = rec.Column(3).(*array.String)
+		gr.goalStep = rec.Column(4).(*array.Int32)
+		gr.goalOff = rec.Column(5).(*array.Int32)
+		gr.goal = rec.Column(6).(*array.List)
+		gr.goalV = gr.goal.ListValues().(*array.Float64)
+		gr.reward = rec.Column(7).(*array.Float32)
+	}
+	i := gr.i
+	gr.i++
+	g.Episode = sameOrClone(g.Episode, gr.episode.Value(i))
+	g.Step = gr.step.Value(i)
+	g.Strategy = schemas.Strategy(gr.strategy.Value(i))
+	g.GoalEpisode = sameOrClone(g.GoalEpisode, gr.goalEpisode.Value(i))
+	g.GoalStep = gr.goalStep.Value(i)
+	g.GoalOffset = gr.goalOff.Value(i)
+	s, e := gr.goal.ValueOffsets(i)
+	g.Goal = append(g.Goal[:0], gr.goalV.Float64Values()[s:e]...)
+	g.Reward = gr.reward.Value(i)
+	return true
+}
+
+// Err is the first read error, if any.
+func (gr *GoalReader) Err() error { return gr.r.Err() }
+
+// Release frees the reader's buffers.
+func (gr *GoalReader) Release() { gr.r.Release() }
+
+// OpenFrames opens a frame stream stored at key.
+func OpenFrames(ctx context.Context, s Store, key string) (*FrameReader, io.Closer, error) {
+	rc, err := s.Open(ctx, key, 0)
+	if err != nil {
+		return nil, nil, err
+	}
+	fr, err := NewFrameReader(rc)
+	if err != nil {
+		rc.Close()
+		return nil, nil, fmt.Errorf("read frames %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return fr, rc, nil
+}
+
+// FrameSource is anything that yields frames in order: a FrameReader, or a
+// merge of several.
+type FrameSource interface {
+	Next(f *schemas.Frame) bool
+	Err() error
+}
+
+// Merge yields the frames of several sources, each already sorted by less,
+// as one sorted sequence. Ties go to the source listed first, so a merge is
+// stable and its output does not depend on timing.
+type Merge struct {
+	h    mergeHeap
+	err  error
+	init bool
+}
+
+// NewMerge merges srcs by less.
+func NewMerge(less func(a, b *schemas.Frame) bool, srcs ...FrameSource) *Merge {
+	m := &Merge{h: mergeHeap{less: less}}
+	for i, s := range srcs {
+		m.h.items = append(m.h.items, &mergeItem{src: s, idx: i})
+	}
+	return m
+}
+
+type mergeItem struct {
+	src FrameSource
+	idx int
+	f   schemas.Frame
+}
+
+type mergeHeap struct {
+	items []*mergeItem
+	less  func(a, b *schemas.Frame) bool
+}
+
+func (h *mergeHeap) Len() int { return len(h.items) }
+func (h *mergeHeap) Less(i, j int) bool {
+	a, b := h.items[i], h.items[j]
+	if h.less(&a.f, &b.f) {
+		return true
+	}
+	if h.less(&b.f, &a.f) {
+		return false
+	}
+	return a.idx < b.idx
+}
+func (h *mergeHeap) Swap(i, j int) { h.items[i], h.items[j] = h.items[j], h.items[i] }
+func (h *mergeHeap) Push(x any)    { h.items = append(h.items, x.(*mergeItem)) }
+func (h *mergeHeap) Pop() any {
+	it := h.items[len(h.items)-1]
+	h.items = h.items[:len(h.items)-1]
+	return it
+}
+
+// Next implements FrameSource.
+func (m *Merge) Next(f *schemas.Frame) bool {
+	if m.err != nil {
+		return false
+	}
+	if !m.init {
+		m.init = true
+		live := m.h.items[:0]
+		for _, it := range m.h.items {
+			if it.src.Next(&it.f) {
+				live = append(live, it)
+			} else if err := it.src.Err(); err != nil {
+				m.err = err
+				return false
+			}
+		}
+		m.h.items = live
+		heap.Init(&m.h)
+	}
+	if len(m.h.items) == 0 {
+		return false
+	}
+	top := m.h.items[0]
+	// Hand the frame over by swapping buffers, so neither side copies vectors.
+	*f, top.f = top.f, *f
+	if top.src.Next(&top.f) {
+		heap.Fix(&m.h, 0)
+	} else {
+		if err := top.src.Err(); err != nil {
+			m.err = err
+			return false
+		}
+		heap.Pop(&m.h)
+	}
+	return true
+}
+
+// Err implements FrameSource.
+func (m *Merge) Err() error { return m.err }

@@ -1,0 +1,240 @@
+package pipeline
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"log/slog"
+	"sort"
+	"sync/atomic"
+	"time"
+
+	"golang.org/x/sync/errgroup"
+)
+
+// ToolVersion is hindcast's release; it is part of every stage key, so a new
+// release never trusts intermediates written by an older one.
+const ToolVersion = "0.1.0"
+
+// Env is what a stage sees of a run: the resolved config, the stores, and
+// where to report. It holds no per-stage state, so any process that builds
+// the same Env computes the same items and keys.
+type Env struct {
+	Config   *Config
+	Source   Store
+	Work     Store
+	Parallel int
+	Log      *slog.Logger
+	Progress Progress
+	// Resolve opens the store of an absolute URI (images referenced by
+	// file:// or s3:// URIs). Nil means OpenStore.
+	Resolve func(ctx context.Context, uri string) (Store, error)
+}
+
+// Progress receives counts while a stage runs; the CLI draws them as a live
+// line on a terminal, or logs them.
+type Progress interface {
+	StageStart(name string, items int, bytes int64)
+	// Advance reports frames and input bytes processed within an item.
+	Advance(name string, frames, bytes int64)
+	ItemDone(name string, reused bool)
+	StageEnd(name string)
+}
+
+// Item is one unit of a stage's work: an object for ingest, a partition
+// after it. Its Key addresses its output under work, so an item whose inputs
+// and config did not change keeps its key, and one whose inputs changed gets
+// a new one.
+type Item struct {
+	ID    string // stable name: the object key, or "p00003"
+	Key   string // content address of the output
+	Bytes int64  // input bytes, for progress and plans
+	Meta  any    // stage-specific inputs, derived (never stored)
+}
+
+// Stage is one step of the pipeline. A stage's output is a set of items, each
+// written under Dir(stage, item.Key) and sealed by a completion record that
+// holds the item's summary; downstream stages read only sealed items.
+type Stage interface {
+	Name() string
+	// Reads returns the parts of the config this stage's output depends on;
+	// they go into its key.
+	Reads(cfg *Config) any
+	// Items lists the stage's work, given the sealed items of the stages
+	// before it (by stage name).
+	Items(ctx context.Context, env *Env, configKey string, upstream map[string][]Sealed) ([]Item, error)
+	// Do runs one item, writing under ItemDir(stage, item.Key), and returns
+	// the summary to seal it with.
+	Do(ctx context.Context, env *Env, it Item) (any, error)
+}
+
+// Sealed is a finished item: its identity and its summary (raw JSON; the
+// stage that wrote it knows its type).
+type Sealed struct {
+	Item    Item
+	Summary json.RawMessage
+}
+
+// StageResult is what a run records of one stage (SPEC §5 `stages`).
+type StageResult struct {
+	Name    string  `json:"name"`
+	Key     string  `json:"key"`
+	Cached  bool    `json:"cached"`
+	Seconds float64 `json:"seconds"`
+	Items   int     `json:"items"`
+	Reused  int     `json:"reused"`
+}
+
+// ItemDir is where an item's output lives in the work store.
+func ItemDir(stage, key string) string { return stage + "/" + key + "/" }
+
+const doneName = "_done.json"
+
+// doneRecord seals an item: written last, after every file of the item.
+type doneRecord struct {
+	Stage   string          `json:"stage"`
+	Key     string          `json:"key"`
+	ID      string          `json:"id"`
+	Summary json.RawMessage `json:"summary"`
+}
+
+// HashParts returns the hex SHA-256 of the JSON encodings of parts, each
+// length-prefixed so that no two different part lists hash alike.
+func HashParts(parts ...any) string {
+	h := sha256.New()
+	for _, p := range parts {
+		b, err := json.Marshal(p)
+		if err != nil {
+			panic(fmt.Sprintf("hash parts: %v", err)) // only plain data is hashed
+		}
+		fmt.Fprintf(h, "%d:", len(b))
+		h.Write(b)
+	}
+	return hex.EncodeToString(h.Sum(nil))
+}
+
+// ConfigKey is the part of a stage's key that its config and code give.
+func ConfigKey(st Stage, cfg *Config) string {
+	return HashParts("hindcast-stage", st.Name(), ToolVersion, st.Reads(cfg))
+}
+
+// Result is the outcome of running the stages: per stage, its record and its
+// sealed items, in stage order.
+type Result struct {
+	Stages []StageResult
+	Sealed map[string][]Sealed
+}
+
+// RunStages runs every stage in order, each item at most env.Parallel at a
+// time. An item already sealed under its key is reused, not redone.
+func RunStages(ctx context.Context, env *Env, stages []Stage) (*Result, error) {
+	res := &Result{Sealed: map[string][]Sealed{}}
+	for _, st := range stages {
+		start := time.Now()
+		ckey := ConfigKey(st, env.Config)
+		items, err := st.Items(ctx, env, ckey, res.Sealed)
+		if err != nil {
+			return nil, fmt.Errorf("%s: plan: %w", st.Name(), err)
+		}
+		sealed, reused, err := runItems(ctx, env, st, items)
+		if err != nil {
+			return nil, err
+		}
+		keys := make([]string, len(items))
+		for i, it := range items {
+			keys[i] = it.Key
+		}
+		sort.Strings(keys)
+		res.Sealed[st.Name()] = sealed
+		res.Stages = append(res.Stages, StageResult{
+			Name:    st.Name(),
+			Key:     HashParts(ckey, keys),
+			Cached:  len(items) > 0 && reused == len(items),
+			Seconds: time.Since(start).Seconds(),
+			Items:   len(items),
+			Reused:  reused,
+		})
+	}
+	return res, nil
+}
+
+func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, int, error) {
+	var total int64
+	for _, it := range items {
+		total += it.Bytes
+	}
+	if env.Progress != nil {
+		env.Progress.StageStart(st.Name(), len(items), total)
+		defer env.Progress.StageEnd(st.Name())
+	}
+	sealed := make([]Sealed, len(items))
+	var reused atomic.Int64
+	g, gctx := errgroup.WithContext(ctx)
+	g.SetLimit(max(1, env.Parallel))
+	for i, it := range items {
+		g.Go(func() error {
+			if err := gctx.Err(); err != nil {
+				return err
+			}
+			sum, wasSealed, err := LoadSealed(gctx, env.Work, st.Name(), it.Key)
+			if err != nil {
+				return err
+			}
+			if wasSealed {
+				reused.Add(1)
+				sealed[i] = Sealed{Item: it, Summary: sum}
+				if env.Progress != nil {
+					env.Progress.ItemDone(st.Name(), true)
+				}
+				return nil
+			}
+			dir := ItemDir(st.Name(), it.Key)
+			// Whatever an earlier, unsealed attempt left is not trusted.
+			if err := DeletePrefix(gctx, env.Work, dir); err != nil {
+				return fmt.Errorf("%s %s: clear: %w", st.Name(), it.ID, err)
+			}
+			out, err := st.Do(gctx, env, it)
+			if err != nil {
+				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, err)
+			}
+			raw, err := json.Marshal(out)
+			if err != nil {
+				return fmt.Errorf("%s %s: summary: %w", st.Name(), it.ID, err)
+			}
+			rec, _ := json.Marshal(doneRecord{Stage: st.Name(), Key: it.Key, ID: it.ID, Summary: raw})
+			if err := Put(gctx, env.Work, dir+doneName, rec, false); err != nil {
+				return fmt.Errorf("%s %s: seal: %w", st.Name(), it.ID, err)
+			}
+			sealed[i] = Sealed{Item: it, Summary: raw}
+			if env.Progress != nil {
+				env.Progress.ItemDone(st.Name(), false)
+			}
+			return nil
+		})
+	}
+	if err := g.Wait(); err != nil {
+		return nil, 0, err
+	}
+	return sealed, int(reused.Load()), nil
+}
+
+// LoadSealed returns an item's summary when its completion record exists and
+// matches the key.
+func LoadSealed(ctx context.Context, work Store, stage, key string) (json.RawMessage, bool, error) {
+	b, err := ReadAll(ctx, work, ItemDir(stage, key)+doneName)
+	if err != nil {
+		if errors.Is(err, ErrNotFound) {
+			return nil, false, nil
+		}
+		return nil, false, err
+	}
+	var rec doneRecord
+	if err := json.Unmarshal(b, &rec); err != nil || rec.Key != key || rec.Stage != stage {
+		// A damaged record seals nothing; the item is redone.
+		return nil, false, nil
+	}
+	return rec.Summary, true, nil
+}

@@ -1,0 +1,345 @@
+package pipeline
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"io/fs"
+	"net/url"
+	"os"
+	"path"
+	"path/filepath"
+	"sort"
+	"strings"
+)
+
+// ErrNotFound is returned (wrapped) by a Store when a key does not exist.
+var ErrNotFound = errors.New("not found")
+
+// ErrExists is returned (wrapped) by PutNew when the key already exists.
+var ErrExists = errors.New("already exists")
+
+// ObjectInfo describes one stored object. ETag is the store's content tag
+// when it has one (S3), or a stand-in built from size and modification time
+// (local folders), so that caches can tell a changed object without reading it.
+type ObjectInfo struct {
+	Key     string // relative to the store's root, "/"-separated
+	Size    int64
+	ETag    string
+	Version string // object version id, when the store keeps versions
+}
+
+// Store is the narrow storage interface every stage uses: a flat namespace of
+// keys under one root. Implementations: a local folder (LocalStore) and S3;
+// decorators (retries, metrics) wrap a Store and are Stores themselves.
+type Store interface {
+	// URI is the root, e.g. "file:///data/logs/" or "s3://bucket/prefix/".
+	URI() string
+	// List calls fn for every object whose key starts with prefix, in byte order of keys.
+	List(ctx context.Context, prefix string, fn func(ObjectInfo) error) error
+	// Stat returns the object's info, or an error wrapping ErrNotFound.
+	Stat(ctx context.Context, key string) (ObjectInfo, error)
+	// Open streams the object from offset to its end.
+	Open(ctx context.Context, key string, offset int64) (io.ReadCloser, error)
+	// Create returns a writer whose content becomes visible at key, atomically,
+	// only when Commit is called; Abort (or a failed Commit) leaves nothing.
+	Create(ctx context.Context, key string) (Upload, error)
+	// Delete removes the object; a missing key is not an error.
+	Delete(ctx context.Context, key string) error
+}
+
+// Upload is an object being written. Exactly one of Commit or Abort must be
+// called; after Commit the object is complete and visible, after Abort there
+// is no trace of it.
+type Upload interface {
+	io.Writer
+	// Commit publishes the object. When exclusive, it fails with ErrExists if
+	// the key already exists, and never replaces it.
+	Commit(exclusive bool) error
+	Abort() error
+}
+
+// ReadAll reads a whole (small) object: summaries, completion records, manifests.
+func ReadAll(ctx context.Context, s Store, key string) ([]byte, error) {
+	r, err := s.Open(ctx, key, 0)
+	if err != nil {
+		return nil, err
+	}
+	defer r.Close()
+	b, err := io.ReadAll(r)
+	if err != nil {
+		return nil, fmt.Errorf("read %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return b, nil
+}
+
+// Put writes a whole (small) object atomically.
+func Put(ctx context.Context, s Store, key string, data []byte, exclusive bool) error {
+	u, err := s.Create(ctx, key)
+	if err != nil {
+		return err
+	}
+	if _, err := u.Write(data); err != nil {
+		u.Abort()
+		return fmt.Errorf("write %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return u.Commit(exclusive)
+}
+
+// JoinURI joins a root URI (with or without its trailing "/") and a key.
+func JoinURI(root, key string) string {
+	if key == "" {
+		return root
+	}
+	return strings.TrimSuffix(root, "/") + "/" + key
+}
+
+// OpenStore returns the Store for a resolved URI (file:// or a plain absolute path).
+func OpenStore(ctx context.Context, uri string) (Store, error) {
+	switch {
+	case strings.HasPrefix(uri, "file://"):
+		u, err := url.Parse(uri)
+		if err != nil {
+			return nil, fmt.Errorf("open store %s: %w", uri, err)
+		}
+		return NewLocalStore(u.Path), nil
+	case strings.HasPrefix(uri, "s3://"):
+		return nil, fmt.Errorf("open store %s: S3 storage is not available in this build", uri)
+	case filepath.IsAbs(uri):
+		return NewLocalStore(uri), nil
+	}
+	return nil, fmt.Errorf("open store %s: unsupported location (want file://, s3:// or an absolute path)", uri)
+}
+
+// LocalStore is a Store on a local folder. Writes go to a temporary file in
+// the same folder and are renamed into place, so a reader never sees a
+// partial object and a crash leaves only a temporary file that List ignores.
+type LocalStore struct {
+	root string
+}
+
+// NewLocalStore returns a Store rooted at the folder dir (which need not exist yet).
+func NewLocalStore(dir string) *LocalStore {
+	return &LocalStore{root: filepath.Clean(dir)}
+}
+
+// Root is the local folder.
+func (s *LocalStore) Root() string { return s.root }
+
+// URI implements Store.
+func (s *LocalStore) URI() string { return "file://" + filepath.ToSlash(s.root) + "/" }
+
+// Path returns the local file path of key.
+func (s *LocalStore) Path(key string) string {
+	return filepath.Join(s.root, filepath.FromSlash(key))
+}
+
+const tempMarker = ".hindcast-tmp-"
+
+// List implements Store. Keys are walked in byte order; temporary files of
+// unfinished writes are skipped.
+func (s *LocalStore) List(ctx context.Context, prefix string, fn func(ObjectInfo) error) error {
+	var keys []ObjectInfo
+	start := s.root
+	if dir := path.Dir(prefix); prefix != "" && dir != "." {
+		start = s.Path(dir)
+	}
+	err := filepath.WalkDir(start, func(p string, d fs.DirEntry, err error) error {
+		if err != nil {
+			if errors.Is(err, fs.ErrNotExist) && p == start {
+				if start == s.root {
+					return fmt.Errorf("folder %s: %w", s.root, ErrNotFound)
+				}
+				return nil
+			}
+			return err
+		}
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		if d.IsDir() || strings.Contains(d.Name(), tempMarker) {
+			return nil
+		}
+		rel, err := filepath.Rel(s.root, p)
+		if err != nil {
+			return err
+		}
+		key := filepath.ToSlash(rel)
+		if !strings.HasPrefix(key, prefix) {
+			return nil
+		}
+		info, err := d.Info()
+		if err != nil {
+			return err
+		}
+		keys = append(keys, localInfo(key, info))
+		return nil
+	})
+	if err != nil {
+		return fmt.Errorf("list %s: %w", JoinURI(s.URI(), prefix), err)
+	}
+	// WalkDir's lexical order is per path element; keys compare as whole
+	// strings ("a/b" vs "a-b"), so sort them as the SPEC's byte order says.
+	sort.Slice(keys, func(i, j int) bool { return keys[i].Key < keys[j].Key })
+	for _, k := range keys {
+		if err := fn(k); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func localInfo(key string, info fs.FileInfo) ObjectInfo {
+	return ObjectInfo{
+		Key:  key,
+		Size: info.Size(),
+		ETag: fmt.Sprintf("%x-%x", info.Size(), info.ModTime().UnixNano()),
+	}
+}
+
+// Stat implements Store.
+func (s *LocalStore) Stat(ctx context.Context, key string) (ObjectInfo, error) {
+	info, err := os.Stat(s.Path(key))
+	if err != nil {
+		if errors.Is(err, fs.ErrNotExist) {
+			return ObjectInfo{}, fmt.Errorf("stat %s: %w", JoinURI(s.URI(), key), ErrNotFound)
+		}
+		return ObjectInfo{}, fmt.Errorf("stat %s: %w", JoinURI(s.URI(), key), err)
+	}
+	if info.IsDir() {
+		return ObjectInfo{}, fmt.Errorf("stat %s: is a folder: %w", JoinURI(s.URI(), key), ErrNotFound)
+	}
+	return localInfo(key, info), nil
+}
+
+// Open implements Store.
+func (s *LocalStore) Open(ctx context.Context, key string, offset int64) (io.ReadCloser, error) {
+	f, err := os.Open(s.Path(key))
+	if err != nil {
+		if errors.Is(err, fs.ErrNotExist) {
+			return nil, fmt.Errorf("open %s: %w", JoinURI(s.URI(), key), ErrNotFound)
+		}
+		return nil, fmt.Errorf("open %s: %w", JoinURI(s.URI(), key), err)
+	}
+	if offset > 0 {
+		if _, err := f.Seek(offset, io.SeekStart); err != nil {
+			f.Close()
+			return nil, fmt.Errorf("open %s at %d: %w", JoinURI(s.URI(), key), offset, err)
+		}
+	}
+	return f, nil
+}
+
+// Create implements Store.
+func (s *LocalStore) Create(ctx context.Context, key string) (Upload, error) {
+	dst := s.Path(key)
+	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
+		return nil, fmt.Errorf("create %s: %w", JoinURI(s.URI(), key), err)
+	}
+	f, err := os.CreateTemp(filepath.Dir(dst), filepath.Base(dst)+tempMarker+"*")
+	if err != nil {
+		return nil, fmt.Errorf("create %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return &localUpload{f: f, dst: dst, uri: JoinURI(s.URI(), key)}, nil
+}
+
+// Delete implements Store.
+func (s *LocalStore) Delete(ctx context.Context, key string) error {
+	if err := os.Remove(s.Path(key)); err != nil && !errors.Is(err, fs.ErrNotExist) {
+		return fmt.Errorf("delete %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return nil
+}
+
+// DeletePrefix removes every object under prefix (used to clear a stage item
+// before it is rewritten).
+func DeletePrefix(ctx context.Context, s Store, prefix string) error {
+	var keys []string
+	err := s.List(ctx, prefix, func(o ObjectInfo) error { keys = append(keys, o.Key); return nil })
+	if err != nil && !errors.Is(err, ErrNotFound) {
+		return err
+	}
+	for _, k := range keys {
+		if err := s.Delete(ctx, k); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// Link implements Linker: a hard link publishes a local file without
+// copying it; it fails (and the caller copies) across file systems.
+func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) error {
+	src, ok := from.(*LocalStore)
+	if !ok {
+		return fmt.Errorf("link %s: not a local store", JoinURI(from.URI(), fromKey))
+	}
+	dst := s.Path(key)
+	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
+		return err
+	}
+	tmp := dst + tempMarker + "link"
+	os.Remove(tmp)
+	if err := os.Link(src.Path(fromKey), tmp); err != nil {
+		return err
+	}
+	if err := os.Rename(tmp, dst); err != nil {
+		os.Remove(tmp)
+		return err
+	}
+	return nil
+}
+
+type localUpload struct {
+	f    *os.File
+	dst  string
+	uri  string
+	done bool
+}
+
+func (u *localUpload) Write(p []byte) (int, error) { return u.f.Write(p) }
+
+func (u *localUpload) Commit(exclusive bool) error {
+	if u.done {
+		return fmt.Errorf("commit %s: already finished", u.uri)
+	}
+	u.done = true
+	tmp := u.f.Name()
+	if err := u.f.Sync(); err != nil {
+		u.f.Close()
+		os.Remove(tmp)
+		return fmt.Errorf("commit %s: %w", u.uri, err)
+	}
+	if err := u.f.Close(); err != nil {
+		os.Remove(tmp)
+		return fmt.Errorf("commit %s: %w", u.uri, err)
+	}
+	if exclusive {
+		// A hard link fails when the destination exists, which makes the
+		// check and the publication one atomic step.
+		err := os.Link(tmp, u.dst)
+		os.Remove(tmp)
+		if err != nil {
+			if errors.Is(err, fs.ErrExist) {
+				return fmt.Errorf("commit %s: %w", u.uri, ErrExists)
+			}
+			return fmt.Errorf("commit %s: %w", u.uri, err)
+		}
+		return nil
+	}
+	if err := os.Rename(tmp, u.dst); err != nil {
+		os.Remove(tmp)
+		return fmt.Errorf("commit %s: %w", u.uri, err)
+	}
+	return nil
+}
+
+func (u *localUpload) Abort() error {
+	if u.done {
+		return nil
+	}
+	u.done = true
+	u.f.Close()
+	return os.Remove(u.f.Name())
+}

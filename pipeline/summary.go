@@ -1,0 +1,193 @@
+package pipeline
+
+import (
+	"encoding/json"
+	"fmt"
+)
+
+// Summaries seal stage items (see doneRecord). They are the only thing a
+// later stage, the commit and the manifest read of an item besides its data
+// files, so each holds what those need and nothing that varies between runs.
+
+// Reason names, in the order SPEC §3.1 checks them, then the episode-stage
+// drops of §3.2.
+const (
+	Oversize          = "oversize"
+	Truncated         = "truncated"
+	Malformed         = "malformed"
+	UnknownEmbodiment = "unknown_embodiment"
+	DimMismatch       = "dim_mismatch"
+	NonFinite         = "non_finite"
+	OutOfRange        = "out_of_range"
+	ImageMissing      = "image_missing"
+	ImageCorrupt      = "image_corrupt"
+	TimeRegress       = "time_regress"
+	Duplicate         = "duplicate"
+	Conflict          = "conflict"
+	ShortEpisode      = "short_episode"
+)
+
+// Reasons lists every drop reason in report order.
+func Reasons() []string {
+	return []string{Oversize, Truncated, Malformed, UnknownEmbodiment, DimMismatch, NonFinite,
+		OutOfRange, ImageMissing, ImageCorrupt, TimeRegress, Duplicate, Conflict, ShortEpisode}
+}
+
+// IngestSummary seals one ingested object.
+type IngestSummary struct {
+	Key        string           `json:"key"`
+	Bytes      int64            `json:"bytes"`
+	SHA256     string           `json:"sha256"`
+	ETag       string           `json:"etag,omitempty"`
+	Version    string           `json:"version_id,omitempty"`
+	Lines      int64            `json:"lines"`
+	Kept       int64            `json:"kept"`
+	Dropped    map[string]int64 `json:"dropped"`
+	Incomplete bool             `json:"incomplete"`
+	// Runs lists, per partition (five-digit name), the work keys of the
+	// sorted runs holding this object's accepted frames.
+	Runs map[string][]string `json:"runs"`
+}
+
+// EpisodeInfo indexes one episode of a partition.
+type EpisodeInfo struct {
+	ID         string `json:"id"`
+	Unit       string `json:"unit"`
+	Embodiment string `json:"embodiment"`
+	Steps      int    `json:"steps"`
+}
+
+// EpisodesSummary seals one partition's episodes.
+type EpisodesSummary struct {
+	Partition int    `json:"partition"`
+	File      string `json:"file"` // work key of the episode stream, sorted by (episode, step)
+	Frames    int64  `json:"frames"`
+	// Episodes in file order (by id).
+	Episodes []EpisodeInfo `json:"episodes"`
+	// Dropped counts the frames this stage dropped, per source key and reason.
+	Dropped map[string]map[string]int64 `json:"dropped"`
+}
+
+// GoalsSummary seals one partition's goals.
+type GoalsSummary struct {
+	Partition int    `json:"partition"`
+	File      string `json:"file"`
+	Pairs     int64  `json:"pairs"`
+	// PerStrategy counts pairs by strategy name.
+	PerStrategy map[string]int64 `json:"per_strategy"`
+}
+
+// PackedFile is one Parquet shard written by pack, before commit.
+type PackedFile struct {
+	Path      string `json:"path"` // relative to the version folder
+	Work      string `json:"work"` // work key of the file
+	Table     string `json:"table"`
+	Split     string `json:"split"`
+	Partition int    `json:"partition"`
+	Rows      int64  `json:"rows"`
+	Episodes  int64  `json:"episodes"`
+	Bytes     int64  `json:"bytes"`
+	SHA256    string `json:"sha256"`
+}
+
+// Count is one (embodiment, split) cell of episodes, frames and pairs.
+type Count struct {
+	Embodiment string `json:"embodiment"`
+	Split      string `json:"split"`
+	Episodes   int64  `json:"episodes"`
+	Frames     int64  `json:"frames"`
+	Pairs      int64  `json:"pairs"`
+}
+
+// Moments accumulates count, mean, sum of squared deviations, min and max per
+// dimension (Welford's online algorithm; partitions are combined with Chan et
+// al.'s pairwise update, always in partition order so the result is the same
+// whatever ran first).
+type Moments struct {
+	N    int64     `json:"n"`
+	Mean []float64 `json:"mean"`
+	M2   []float64 `json:"m2"`
+	Min  []float64 `json:"min"`
+	Max  []float64 `json:"max"`
+}
+
+// Add accumulates one vector.
+func (m *Moments) Add(x []float64) {
+	if m.N == 0 {
+		m.Mean = make([]float64, len(x))
+		m.M2 = make([]float64, len(x))
+		m.Min = append([]float64(nil), x...)
+		m.Max = append([]float64(nil), x...)
+	}
+	m.N++
+	n := float64(m.N)
+	for i, v := range x {
+		d := v - m.Mean[i]
+		m.Mean[i] += d / n
+		m.M2[i] += d * (v - m.Mean[i])
+		m.Min[i] = min(m.Min[i], v)
+		m.Max[i] = max(m.Max[i], v)
+	}
+}
+
+// Merge folds o into m (Chan, Golub and LeVeque's pairwise combination).
+func (m *Moments) Merge(o *Moments) {
+	if o == nil || o.N == 0 {
+		return
+	}
+	if m.N == 0 {
+		*m = Moments{N: o.N, Mean: append([]float64(nil), o.Mean...), M2: append([]float64(nil), o.M2...),
+			Min: append([]float64(nil), o.Min...), Max: append([]float64(nil), o.Max...)}
+		return
+	}
+	na, nb := float64(m.N), float64(o.N)
+	n := na + nb
+	for i := range m.Mean {
+		d := o.Mean[i] - m.Mean[i]
+		m.Mean[i] += d * nb / n
+		m.M2[i] += o.M2[i] + d*d*na*nb/n
+		m.Min[i] = min(m.Min[i], o.Min[i])
+		m.Max[i] = max(m.Max[i], o.Max[i])
+	}
+	m.N += o.N
+}
+
+// PackSummary seals one partition's shards.
+type PackSummary struct {
+	Partition int          `json:"partition"`
+	Files     []PackedFile `json:"files"`
+	Counts    []Count      `json:"counts"`
+	// Obs and Act hold the train split's moments per embodiment.
+	Obs map[string]*Moments `json:"obs"`
+	Act map[string]*Moments `json:"act"`
+	// Offsets counts pairs by strategy and goal offset, for reports.
+	Offsets map[string]map[int32]int64 `json:"offsets,omitempty"`
+}
+
+// PartName is the five-digit partition name used in keys and file names.
+func PartName(p int) string { return fmt.Sprintf("%05d", p) }
+
+// SourceSummary is an ingest summary with the duplicate decision made.
+type SourceSummary struct {
+	IngestSummary
+	DuplicateOf string
+}
+
+// IngestSummaries decodes the sealed ingest items (in key order) and marks
+// every object whose SHA-256 equals an earlier object's as its duplicate.
+func Sources(sealed []Sealed) ([]SourceSummary, error) {
+	out := make([]SourceSummary, len(sealed))
+	first := map[string]string{}
+	for i, s := range sealed {
+		if err := json.Unmarshal(s.Summary, &out[i].IngestSummary); err != nil {
+			return nil, fmt.Errorf("ingest %s: summary: %w", s.Item.ID, err)
+		}
+		o := &out[i]
+		if k, ok := first[o.SHA256]; ok {
+			o.DuplicateOf = k
+		} else {
+			first[o.SHA256] = o.Key
+		}
+	}
+	return out, nil
+}

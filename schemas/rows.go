@@ -1,0 +1,157 @@
+// Package schemas holds the row types that travel between stages, the Arrow
+// schema of the intermediates, the Parquet row types of the shards, and the
+// JSON Schemas of the config and the manifest.
+package schemas
+
+import (
+	"github.com/apache/arrow-go/v18/arrow"
+)
+
+// Event is a frame's episode event (SPEC §1 `ev`).
+type Event int8
+
+const (
+	EvNone  Event = 0
+	EvStart Event = 1
+	EvEnd   Event = 2
+)
+
+// Frame is one accepted log line as it travels between stages. Vectors are
+// already rounded to the output float type (SPEC §3.2 compares after that
+// conversion), but kept as float64 so one code path serves both types.
+type Frame struct {
+	Unit       string
+	Embodiment string
+	T          int64
+	Src        string // object key relative to the source root
+	Line       int64  // 1-based physical line in the decompressed object
+	Obs        []float64
+	Act        []float64
+	HasAct     bool
+	Ev         Event
+	Task       string
+	HasTask    bool
+	Success    bool
+	HasSuccess bool
+	ImgRef     []string // per declared camera of the embodiment, as written
+	Img        [][]byte // per declared camera, the image bytes
+
+	// Set by the episodes stage.
+	Episode string
+	Step    int32
+	Last    bool
+}
+
+// Reset empties f for reuse, keeping slice capacity.
+func (f *Frame) Reset() {
+	obs, act, ref, img := f.Obs[:0], f.Act[:0], f.ImgRef[:0], f.Img[:0]
+	*f = Frame{Obs: obs, Act: act, ImgRef: ref, Img: img}
+}
+
+// CopyFrom makes f a deep copy of g, reusing f's slices.
+func (f *Frame) CopyFrom(g *Frame) {
+	obs, act, ref, img := append(f.Obs[:0], g.Obs...), append(f.Act[:0], g.Act...), append(f.ImgRef[:0], g.ImgRef...), f.Img[:0]
+	for _, b := range g.Img {
+		img = append(img, append([]byte(nil), b...))
+	}
+	*f = *g
+	f.Obs, f.Act, f.ImgRef, f.Img = obs, act, ref, img
+}
+
+// SameContent reports whether two frames of one unit at one t carry the same
+// content in the sense of SPEC §3.2: embodiment, obs, act, ev, task, success
+// and img as written (vectors compare after conversion to the output type,
+// which ingest has already done).
+func SameContent(a, b *Frame) bool {
+	if a.Embodiment != b.Embodiment || a.Ev != b.Ev || a.HasAct != b.HasAct ||
+		a.HasTask != b.HasTask || a.Task != b.Task || a.HasSuccess != b.HasSuccess || a.Success != b.Success {
+		return false
+	}
+	return equalFloats(a.Obs, b.Obs) && equalFloats(a.Act, b.Act) && equalStrings(a.ImgRef, b.ImgRef)
+}
+
+func equalFloats(a, b []float64) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+func equalStrings(a, b []string) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+// FrameArrow is the Arrow schema of frame intermediates (ingest runs and
+// episode files): one schema for both, the episode columns null before the
+// episodes stage fills them.
+var FrameArrow = arrow.NewSchema([]arrow.Field{
+	{Name: "unit", Type: arrow.BinaryTypes.String},
+	{Name: "embodiment", Type: arrow.BinaryTypes.String},
+	{Name: "t", Type: arrow.PrimitiveTypes.Int64},
+	{Name: "src", Type: arrow.BinaryTypes.String},
+	{Name: "src_line", Type: arrow.PrimitiveTypes.Int64},
+	{Name: "obs", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64)},
+	{Name: "act", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64), Nullable: true},
+	{Name: "ev", Type: arrow.PrimitiveTypes.Int8},
+	{Name: "task", Type: arrow.BinaryTypes.String, Nullable: true},
+	{Name: "success", Type: arrow.FixedWidthTypes.Boolean, Nullable: true},
+	{Name: "img_ref", Type: arrow.ListOf(arrow.BinaryTypes.String)},
+	{Name: "img", Type: arrow.ListOf(arrow.BinaryTypes.Binary)},
+	{Name: "episode", Type: arrow.BinaryTypes.String},
+	{Name: "step", Type: arrow.PrimitiveTypes.Int32},
+	{Name: "last", Type: arrow.FixedWidthTypes.Boolean},
+}, nil)
+
+// Goal is one relabeled goal of one step (SPEC §3.3), as the goals stage
+// hands it to pack: the goal frame's coordinates, not its vectors, plus the
+// goal vector and the reward, which need the goal frame.
+type Goal struct {
+	Episode     string
+	Step        int32
+	Strategy    Strategy
+	GoalEpisode string
+	GoalStep    int32
+	GoalOffset  int32
+	Goal        []float64
+	Reward      float32
+}
+
+// Strategy is a goal strategy, in the SPEC's sort order.
+type Strategy int8
+
+const (
+	Future Strategy = iota
+	Geometric
+	Final
+	Negative
+)
+
+// StrategyNames are the strategies' names as written in the pairs table.
+func StrategyNames() [4]string { return [4]string{"future", "geometric", "final", "negative"} }
+
+func (s Strategy) String() string { return StrategyNames()[s] }
+
+// GoalArrow is the Arrow schema of the goals intermediate.
+var GoalArrow = arrow.NewSchema([]arrow.Field{
+	{Name: "episode", Type: arrow.BinaryTypes.String},
+	{Name: "step", Type: arrow.PrimitiveTypes.Int32},
+	{Name: "strategy", Type: arrow.PrimitiveTypes.Int8},
+	{Name: "goal_episode", Type: arrow.BinaryTypes.String},
+	{Name: "goal_step", Type: arrow.PrimitiveTypes.Int32},
+	{Name: "goal_offset", Type: arrow.PrimitiveTypes.Int32},
+	{Name: "goal", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64)},
+	{Name: "reward", Type: arrow.PrimitiveTypes.Float32},
+}, nil)

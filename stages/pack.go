@@ -1,0 +1,435 @@
+package stages
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"fmt"
+	"hash"
+	"io"
+	"slices"
+	"sort"
+
+	"github.com/parquet-go/parquet-go"
+	"github.com/parquet-go/parquet-go/compress"
+	"github.com/parquet-go/parquet-go/compress/gzip"
+	"github.com/parquet-go/parquet-go/compress/snappy"
+	"github.com/parquet-go/parquet-go/compress/uncompressed"
+	"github.com/parquet-go/parquet-go/compress/zstd"
+
+	"hindcast/pipeline"
+	"hindcast/schemas"
+)
+
+// Pack writes a partition's episodes and goals as Parquet shards, one file
+// per (table, split) that has rows (SPEC §4), and the train split's stats.
+type Pack struct{}
+
+// Name implements pipeline.Stage.
+func (Pack) Name() string { return "pack" }
+
+// Reads implements pipeline.Stage. The footers carry the config's SHA-256,
+// so any config change re-packs.
+func (Pack) Reads(cfg *pipeline.Config) any {
+	return map[string]any{"config_sha256": cfg.SHA256()}
+}
+
+type packInput struct {
+	Episodes pipeline.EpisodesSummary
+	Goals    pipeline.GoalsSummary
+}
+
+// Items implements pipeline.Stage: one item per partition.
+func (Pack) Items(ctx context.Context, env *pipeline.Env, ckey string, up map[string][]pipeline.Sealed) ([]pipeline.Item, error) {
+	eps, goals := up["episodes"], up["goals"]
+	if len(eps) != len(goals) {
+		return nil, fmt.Errorf("pack: %d episode partitions but %d goal partitions", len(eps), len(goals))
+	}
+	items := make([]pipeline.Item, len(eps))
+	for i := range eps {
+		var in packInput
+		if err := json.Unmarshal(eps[i].Summary, &in.Episodes); err != nil {
+			return nil, fmt.Errorf("episodes %s: summary: %w", eps[i].Item.ID, err)
+		}
+		if err := json.Unmarshal(goals[i].Summary, &in.Goals); err != nil {
+			return nil, fmt.Errorf("goals %s: summary: %w", goals[i].Item.ID, err)
+		}
+		items[i] = pipeline.Item{ID: eps[i].Item.ID, Key: pipeline.HashParts(ckey, eps[i].Item.Key, goals[i].Item.Key), Meta: in}
+	}
+	return items, nil
+}
+
+// Codec returns the Parquet codec for a config's compression name; zstd is
+// used at its fastest level, which keeps pack from being the bottleneck.
+func Codec(name string) compress.Codec {
+	switch name {
+	case "snappy":
+		return &snappy.Codec{}
+	case "gzip":
+		return &gzip.Codec{}
+	case "none":
+		return &uncompressed.Codec{}
+	}
+	return &zstd.Codec{Level: zstd.SpeedFastest}
+}
+
+// AllCameras lists every camera declared by any embodiment, sorted: the
+// frames table's image columns.
+func AllCameras(cfg *pipeline.Config) []string {
+	var cams []string
+	for _, e := range cfg.Embodiments {
+		for _, c := range e.Cameras {
+			if !slices.Contains(cams, c) {
+				cams = append(cams, c)
+			}
+		}
+	}
+	sort.Strings(cams)
+	return cams
+}
+
+// hashWriter counts and hashes what goes to the store, so a shard's size and
+// SHA-256 are known without reading it back.
+type hashWriter struct {
+	w io.Writer
+	h hash.Hash
+	n int64
+}
+
+func (hw *hashWriter) Write(p []byte) (int, error) {
+	n, err := hw.w.Write(p)
+	hw.h.Write(p[:n])
+	hw.n += int64(n)
+	return n, err
+}
+
+// shard is one Parquet file being written.
+type shard struct {
+	file    pipeline.PackedFile
+	up      pipeline.Upload
+	hw      *hashWriter
+	frames  *parquet.Writer
+	pairs   pairWriter
+	rowsBuf []parquet.Row
+}
+
+// pairWriter hides the output float type of the pairs writer.
+type pairWriter interface {
+	add(f, next *schemas.Frame, g *schemas.Goal, strategy string, reached bool) error
+	Close() error
+}
+
+type typedPairs[F schemas.Float] struct {
+	w   *parquet.GenericWriter[schemas.PairRow[F]]
+	buf []schemas.PairRow[F]
+}
+
+func toF[F schemas.Float](dst []F, v []float64) []F {
+	dst = dst[:0]
+	for _, x := range v {
+		dst = append(dst, F(x))
+	}
+	return dst
+}
+
+func (p *typedPairs[F]) add(f, next *schemas.Frame, g *schemas.Goal, strategy string, reached bool) error {
+	p.buf = append(p.buf, schemas.PairRow[F]{})
+	r := &p.buf[len(p.buf)-1]
+	*r = schemas.PairRow[F]{
+		Episode: f.Episode, Step: f.Step, T: f.T, Unit: f.Unit, Embodiment: f.Embodiment,
+		Obs: toF(r.Obs, f.Obs), NextObs: toF(r.NextObs, next.Obs),
+		GoalEpisode: g.GoalEpisode, GoalStep: g.GoalStep, GoalOffset: g.GoalOffset,
+		Goal: toF(r.Goal, g.Goal), Reward: g.Reward, Reached: reached, Strategy: strategy,
+		Src: f.Src, SrcLine: f.Line,
+	}
+	if f.HasAct {
+		r.Act = toF(r.Act[:0], f.Act)
+		if r.Act == nil {
+			r.Act = []F{}
+		}
+	}
+	if len(p.buf) == cap(p.buf) {
+		return p.flush()
+	}
+	return nil
+}
+
+func (p *typedPairs[F]) flush() error {
+	if len(p.buf) == 0 {
+		return nil
+	}
+	_, err := p.w.Write(p.buf)
+	p.buf = p.buf[:0]
+	return err
+}
+
+func (p *typedPairs[F]) Close() error {
+	if err := p.flush(); err != nil {
+		return err
+	}
+	return p.w.Close()
+}
+
+// Do implements pipeline.Stage.
+func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
+	in := it.Meta.(packInput)
+	cfg := env.Config
+	part := in.Episodes.Partition
+	dir := pipeline.ItemDir(st.Name(), it.Key)
+	cams := AllCameras(cfg)
+	ft, err := schemas.NewFrameTable(cams, cfg.Float == "float32")
+	if err != nil {
+		return nil, err
+	}
+	camIdx := map[string][]int{}
+	for name, e := range cfg.Embodiments {
+		idx := make([]int, len(cams))
+		for i, c := range cams {
+			idx[i] = slices.Index(e.Cameras, c)
+		}
+		camIdx[name] = idx
+	}
+	sum := pipeline.PackSummary{Partition: part, Obs: map[string]*pipeline.Moments{}, Act: map[string]*pipeline.Moments{},
+		Offsets: map[string]map[int32]int64{}}
+	counts := map[[2]string]*pipeline.Count{}
+	shards := map[[2]string]*shard{} // (table, split)
+	options := func(table, split string) []parquet.WriterOption {
+		return []parquet.WriterOption{
+			parquet.Compression(Codec(cfg.Parquet.Compression)),
+			parquet.MaxRowsPerRowGroup(int64(cfg.Parquet.RowGroupRows)),
+			parquet.CreatedBy("hindcast", pipeline.ToolVersion, ""),
+			parquet.KeyValueMetadata("dataset", cfg.Dataset),
+			parquet.KeyValueMetadata("table", table),
+			parquet.KeyValueMetadata("split", split),
+			parquet.KeyValueMetadata("partition", fmt.Sprint(part)),
+			parquet.KeyValueMetadata("config_sha256", cfg.SHA256()),
+		}
+	}
+	open := func(table, split string) (*shard, error) {
+		if s := shards[[2]string{table, split}]; s != nil {
+			return s, nil
+		}
+		path := fmt.Sprintf("%s/split=%s/part-%s.parquet", table, split, pipeline.PartName(part))
+		up, err := env.Work.Create(ctx, dir+path)
+		if err != nil {
+			return nil, err
+		}
+		s := &shard{up: up, hw: &hashWriter{w: up, h: sha256.New()},
+			file: pipeline.PackedFile{Path: path, Work: dir + path, Table: table, Split: split, Partition: part}}
+		opts := options(table, split)
+		if table == "frames" {
+			s.frames = parquet.NewWriter(s.hw, append(opts, ft.Schema)...)
+		} else if cfg.Float == "float32" {
+			s.pairs = &typedPairs[float32]{w: parquet.NewGenericWriter[schemas.PairRow[float32]](s.hw, opts...), buf: make([]schemas.PairRow[float32], 0, 1024)}
+		} else {
+			s.pairs = &typedPairs[float64]{w: parquet.NewGenericWriter[schemas.PairRow[float64]](s.hw, opts...), buf: make([]schemas.PairRow[float64], 0, 1024)}
+		}
+		shards[[2]string{table, split}] = s
+		return s, nil
+	}
+	abortAll := func() {
+		for _, s := range shards {
+			s.up.Abort()
+		}
+	}
+
+	fr, c, err := pipeline.OpenFrames(ctx, env.Work, in.Episodes.File)
+	if err != nil {
+		return nil, err
+	}
+	defer c.Close()
+	defer fr.Release()
+	gr, gc, err := openGoals(ctx, env.Work, in.Goals.File)
+	if err != nil {
+		return nil, err
+	}
+	defer gc.Close()
+	defer gr.Release()
+
+	var (
+		ep    []schemas.Frame // the current episode
+		g     schemas.Goal
+		haveG = gr.Next(&g)
+		names = schemas.StrategyNames()
+		f     schemas.Frame
+		ok    = fr.Next(&f)
+	)
+	for ok {
+		if err := ctx.Err(); err != nil {
+			abortAll()
+			return nil, err
+		}
+		ep = ep[:0]
+		id := f.Episode
+		for ok && f.Episode == id {
+			if len(ep) < cap(ep) {
+				ep = ep[:len(ep)+1] // keeps the frame's buffers from an earlier episode
+			} else {
+				ep = append(ep, schemas.Frame{})
+			}
+			ep[len(ep)-1].CopyFrom(&f)
+			ok = fr.Next(&f)
+		}
+		key := id
+		if cfg.SplitBy == "unit" {
+			key = ep[0].Unit
+		}
+		split := pipeline.SplitOf(key, cfg.Splits)
+		emb := ep[0].Embodiment
+		cnt := counts[[2]string{emb, split}]
+		if cnt == nil {
+			cnt = &pipeline.Count{Embodiment: emb, Split: split}
+			counts[[2]string{emb, split}] = cnt
+		}
+		cnt.Episodes++
+		cnt.Frames += int64(len(ep))
+		fs, err := open("frames", split)
+		if err != nil {
+			abortAll()
+			return nil, err
+		}
+		fs.file.Episodes++
+		rows := fs.rowsBuf[:0]
+		for i := range ep {
+			var r parquet.Row
+			if i < cap(rows) {
+				r = rows[:i+1][i] // reuse the row's memory from an earlier episode
+			}
+			rows = append(rows, ft.Row(r, &ep[i], camIdx[emb]))
+		}
+		fs.rowsBuf = rows
+		if _, err := fs.frames.WriteRows(fs.rowsBuf); err != nil {
+			abortAll()
+			return nil, fmt.Errorf("write frames of %s: %w", id, err)
+		}
+		fs.file.Rows += int64(len(ep))
+		if split == "train" {
+			addMoments(sum.Obs, sum.Act, ep)
+		}
+		var ps *shard
+		for haveG && g.Episode == id {
+			if ps == nil {
+				if ps, err = open("pairs", split); err != nil {
+					abortAll()
+					return nil, err
+				}
+				ps.file.Episodes++
+			}
+			step := int(g.Step)
+			if step+1 >= len(ep) {
+				abortAll()
+				return nil, fmt.Errorf("goal of %s at step %d beyond its %d steps", id, step, len(ep))
+			}
+			name := names[g.Strategy]
+			if err := ps.pairs.add(&ep[step], &ep[step+1], &g, name, g.Reward == 1); err != nil {
+				abortAll()
+				return nil, fmt.Errorf("write pairs of %s: %w", id, err)
+			}
+			ps.file.Rows++
+			cnt.Pairs++
+			off := sum.Offsets[name]
+			if off == nil {
+				off = map[int32]int64{}
+				sum.Offsets[name] = off
+			}
+			off[g.GoalOffset]++
+			haveG = gr.Next(&g)
+		}
+		if haveG && g.Episode < id {
+			abortAll()
+			return nil, fmt.Errorf("goals out of step with episodes at %s", g.Episode)
+		}
+	}
+	if err := fr.Err(); err != nil {
+		abortAll()
+		return nil, err
+	}
+	if err := gr.Err(); err != nil {
+		abortAll()
+		return nil, err
+	}
+	if haveG {
+		abortAll()
+		return nil, fmt.Errorf("goal for unknown episode %s", g.Episode)
+	}
+	for _, k := range sortedShardKeys(shards) {
+		s := shards[k]
+		var err error
+		if s.frames != nil {
+			err = s.frames.Close()
+		} else {
+			err = s.pairs.Close()
+		}
+		if err != nil {
+			abortAll()
+			return nil, fmt.Errorf("close %s: %w", s.file.Path, err)
+		}
+		s.file.Bytes = s.hw.n
+		s.file.SHA256 = hex.EncodeToString(s.hw.h.Sum(nil))
+		if err := s.up.Commit(false); err != nil {
+			return nil, err
+		}
+		sum.Files = append(sum.Files, s.file)
+	}
+	for _, k := range sortedCountKeys(counts) {
+		sum.Counts = append(sum.Counts, *counts[k])
+	}
+	return sum, nil
+}
+
+func openGoals(ctx context.Context, work pipeline.Store, key string) (*pipeline.GoalReader, io.Closer, error) {
+	rc, err := work.Open(ctx, key, 0)
+	if err != nil {
+		return nil, nil, err
+	}
+	gr, err := pipeline.NewGoalReader(rc)
+	if err != nil {
+		rc.Close()
+		return nil, nil, fmt.Errorf("read goals %s: %w", key, err)
+	}
+	return gr, rc, nil
+}
+
+func addMoments(obs, act map[string]*pipeline.Moments, ep []schemas.Frame) {
+	emb := ep[0].Embodiment
+	mo, ma := obs[emb], act[emb]
+	if mo == nil {
+		mo, ma = &pipeline.Moments{}, &pipeline.Moments{}
+		obs[emb], act[emb] = mo, ma
+	}
+	for i := range ep {
+		mo.Add(ep[i].Obs)
+		if ep[i].HasAct {
+			ma.Add(ep[i].Act)
+		}
+	}
+}
+
+func sortedShardKeys(m map[[2]string]*shard) [][2]string {
+	keys := make([][2]string, 0, len(m))
+	for k := range m {
+		keys = append(keys, k)
+	}
+	sort.Slice(keys, func(i, j int) bool {
+		if keys[i][0] != keys[j][0] {
+			return keys[i][0] < keys[j][0]
+		}
+		return keys[i][1] < keys[j][1]
+	})
+	return keys
+}
+
+func sortedCountKeys(m map[[2]string]*pipeline.Count) [][2]string {
+	keys := make([][2]string, 0, len(m))
+	for k := range m {
+		keys = append(keys, k)
+	}
+	sort.Slice(keys, func(i, j int) bool {
+		if keys[i][0] != keys[j][0] {
+			return keys[i][0] < keys[j][0]
+		}
+		return keys[i][1] < keys[j][1]
+	})
+	return keys
+}

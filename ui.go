@@ -1,0 +1,198 @@
+package main
+
+import (
+	"fmt"
+	"io"
+	"log/slog"
+	"sort"
+	"strings"
+	"sync"
+	"time"
+
+	"github.com/schollz/progressbar/v3"
+
+	"hindcast/pipeline"
+)
+
+// ui is how a run talks to people: live progress lines on a terminal,
+// structured JSON logs otherwise.
+type ui struct {
+	w   io.Writer
+	tty bool
+	log *slog.Logger
+}
+
+func newUI(stderr io.Writer) *ui {
+	tty := isTTY(stderr)
+	return &ui{w: stderr, tty: tty, log: newLogger(stderr, tty)}
+}
+
+func (u *ui) progress() pipeline.Progress { return &progress{ui: u} }
+
+// progress implements pipeline.Progress; stage items run concurrently, so
+// every method takes the lock.
+type progress struct {
+	ui *ui
+	mu sync.Mutex
+
+	stage         string
+	items, done   int
+	reused        int
+	frames, bytes int64
+	totalBytes    int64
+	start         time.Time
+	bar           *progressbar.ProgressBar
+}
+
+func (p *progress) StageStart(name string, items int, bytes int64) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.stage, p.items, p.done, p.reused, p.frames, p.bytes, p.totalBytes, p.start = name, items, 0, 0, 0, 0, bytes, time.Now()
+	if p.ui.tty {
+		// Ingest is measured in bytes read (its ETA), later stages in items.
+		total := int64(items)
+		if name == pipeline.StageIngest && bytes > 0 {
+			total = bytes
+		}
+		p.bar = progressbar.NewOptions64(total,
+			progressbar.OptionSetWriter(p.ui.w),
+			progressbar.OptionSetDescription(p.describe()),
+			progressbar.OptionSetPredictTime(true),
+			progressbar.OptionShowElapsedTimeOnFinish(),
+			progressbar.OptionThrottle(200*time.Millisecond),
+			progressbar.OptionSetWidth(24),
+			progressbar.OptionClearOnFinish(),
+		)
+		if name == pipeline.StageIngest && bytes > 0 {
+			progressbar.OptionShowBytes(true)(p.bar)
+		}
+	}
+	p.ui.log.Info("stage start", "stage", name, "items", items, "bytes", bytes)
+}
+
+func (p *progress) describe() string {
+	rate := 0.0
+	if s := time.Since(p.start).Seconds(); s > 0 {
+		rate = float64(p.frames) / s
+	}
+	unit := "partitions"
+	if p.stage == pipeline.StageIngest {
+		unit = "objects"
+	}
+	return fmt.Sprintf("%-8s %d/%d %s, %s frames/s", p.stage, p.done, p.items, unit, humanCount(rate))
+}
+
+func (p *progress) Advance(name string, frames, bytes int64) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.frames += frames
+	p.bytes += bytes
+	if p.bar != nil && name == pipeline.StageIngest && p.totalBytes > 0 {
+		p.bar.Describe(p.describe())
+		p.bar.Add64(bytes)
+	}
+}
+
+func (p *progress) ItemDone(name string, reused bool) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.done++
+	if reused {
+		p.reused++
+	}
+	if p.bar != nil {
+		p.bar.Describe(p.describe())
+		if !(name == pipeline.StageIngest && p.totalBytes > 0) {
+			p.bar.Add(1)
+		}
+	}
+}
+
+func (p *progress) StageEnd(name string) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	secs := time.Since(p.start).Seconds()
+	if p.bar != nil {
+		p.bar.Finish()
+		fmt.Fprintf(p.ui.w, "%-8s %d items (%d reused) in %.2fs\n", name, p.items, p.reused, secs)
+		p.bar = nil
+	}
+	p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "frames", p.frames, "bytes", p.bytes, "seconds", secs)
+}
+
+func humanCount(v float64) string {
+	switch {
+	case v >= 1e6:
+		return fmt.Sprintf("%.2fM", v/1e6)
+	case v >= 1e3:
+		return fmt.Sprintf("%.1fk", v/1e3)
+	}
+	return fmt.Sprintf("%.0f", v)
+}
+
+// printSummary writes the end-of-run report: the funnel with every drop
+// reason, episodes and pairs per embodiment and split, files, and where the
+// version is.
+func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
+	f := m.Funnel
+	fmt.Fprintf(w, "\ndataset %s version %s\n", m.Dataset, m.Version)
+	fmt.Fprintf(w, "sources   %d objects (%d duplicate)\n", f.Objects, f.DuplicateObjects)
+	fmt.Fprintf(w, "lines     %d\n", f.Lines)
+	fmt.Fprintf(w, "frames    %d kept (%s)\n", f.Frames, share(f.Frames, f.Lines))
+	var dropped int64
+	for _, r := range pipeline.Reasons() {
+		dropped += f.Dropped[r]
+	}
+	fmt.Fprintf(w, "dropped   %d (%s)\n", dropped, share(dropped, f.Lines))
+	for _, r := range pipeline.Reasons() {
+		if n := f.Dropped[r]; n > 0 {
+			fmt.Fprintf(w, "  %-20s %8d  %s\n", r, n, share(n, f.Lines))
+		}
+	}
+	incomplete := 0
+	for _, s := range m.Sources {
+		if s.Incomplete {
+			incomplete++
+		}
+	}
+	if incomplete > 0 {
+		fmt.Fprintf(w, "incomplete objects: %d\n", incomplete)
+	}
+	fmt.Fprintf(w, "episodes  %d   pairs %d\n", f.Episodes, f.Pairs)
+	fmt.Fprintf(w, "  %-14s %-6s %9s %10s %11s\n", "embodiment", "split", "episodes", "frames", "pairs")
+	for _, c := range m.Counts {
+		fmt.Fprintf(w, "  %-14s %-6s %9d %10d %11d\n", c.Embodiment, c.Split, c.Episodes, c.Frames, c.Pairs)
+	}
+	var bytes int64
+	tables := map[string]int{}
+	for _, fl := range m.Files {
+		bytes += fl.Bytes
+		tables[fl.Table]++
+	}
+	var parts []string
+	for _, t := range sortedNames(tables) {
+		parts = append(parts, fmt.Sprintf("%d %s", tables[t], t))
+	}
+	fmt.Fprintf(w, "files     %d (%s), %.1f MB\n", len(m.Files), strings.Join(parts, ", "), float64(bytes)/1e6)
+	for _, s := range m.Stages {
+		fmt.Fprintf(w, "  stage %-9s %6.2fs  %d items, %d reused\n", s.Name, s.Seconds, s.Items, s.Reused)
+	}
+	fmt.Fprintf(w, "digest    %s\n", m.Digest)
+	fmt.Fprintf(w, "version   %s\n", where)
+}
+
+func share(n, of int64) string {
+	if of == 0 {
+		return "0.0%"
+	}
+	return fmt.Sprintf("%.1f%%", 100*float64(n)/float64(of))
+}
+
+func sortedNames(m map[string]int) []string {
+	var keys []string
+	for k := range m {
+		keys = append(keys, k)
+	}
+	sort.Strings(keys)
+	return keys
+}
