@@ -14,6 +14,7 @@ import (
 	"path/filepath"
 	"runtime"
 	"runtime/debug"
+	"runtime/pprof"
 	"syscall"
 
 	"github.com/mattn/go-isatty"
@@ -49,6 +50,7 @@ type Command struct {
 	Runs     int
 	Peer     string
 	Compress bool
+	Profile  string
 	Help     bool
 }
 
@@ -65,6 +67,7 @@ func commands() map[string]commandSpec {
 		"run": {"run every stage and commit a dataset version", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
+			fs.StringVar(&c.Profile, "cpuprofile", "", "write a CPU profile (runtime/pprof) to this file")
 			parallel(fs, c)
 		}},
 		"demo": {"write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
@@ -208,6 +211,17 @@ func runConfig(ctx context.Context, path, version string, parallel int, stdout i
 }
 
 func runCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	if c.Profile != "" {
+		f, err := os.Create(c.Profile)
+		if err != nil {
+			return err
+		}
+		defer f.Close()
+		if err := pprof.StartCPUProfile(f); err != nil {
+			return err
+		}
+		defer pprof.StopCPUProfile()
+	}
 	_, err := runConfig(ctx, c.Config, c.Version, c.Parallel, stdout, ui)
 	return err
 }

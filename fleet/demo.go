@@ -129,7 +129,7 @@ type demo struct {
 // thousands of tiny frames instead of allocating one per image.
 type pngBuffers struct{ b *png.EncoderBuffer }
 
-func (p *pngBuffers) Get() *png.EncoderBuffer { b := p.b; p.b = nil; return b }
+func (p *pngBuffers) Get() *png.EncoderBuffer  { b := p.b; p.b = nil; return b }
 func (p *pngBuffers) Put(b *png.EncoderBuffer) { p.b = b }
 
 // imageMode is how a picker6 unit's log refers to its wrist camera frames,
@@ -207,7 +207,9 @@ func genUnit(p unitPlan) []frame {
 			e = episodePlan{steps: s.steps, gapBefore: int64(2500 * time.Millisecond)}
 			prev := &eps[len(eps)-1]
 			if s.afterEnd {
-				prev.evEnd, prev.success = true, 1
+				if !prev.evEnd {
+					prev.evEnd, prev.success = true, 1
+				}
 				e.gapBefore = period
 			}
 		}
@@ -470,7 +472,8 @@ func insert(lines [][]byte, i int, extra ...[]byte) [][]byte {
 	return append(out, lines[i:]...)
 }
 
-// The picker6 units. Their numbers in start() double as their seeds.
+// The picker6 units. A unit's number in start() is also its generator seed
+// (plus 100 for a later session), so units never share a random stream.
 
 // p6Malformed: lark-p6-001, a plain object with malformed lines of every
 // kind (a stray controller message, bad JSON, no t, t with a fraction or an
@@ -611,7 +614,7 @@ func (d *demo) p6DataURIs() error {
 		fs[i].img = "data:image/png;base64," + base64.StdEncoding.EncodeToString(damage(b))
 		return nil
 	}
-	// PNG layout (W3C PNG spec §5.2–5.3): 8-byte signature, then chunks of
+	// PNG layout (W3C PNG spec §5.2–5.3, from memory): 8-byte signature, then chunks of
 	// length, type, data, CRC; IHDR comes first (8+25 bytes), then IDAT, whose
 	// data starts 8 bytes into it. Flipping a data byte breaks the CRC.
 	if err := corrupt(calm(fs, 100, 1), func(b []byte) []byte { b[33+8+4] ^= 0x5a; return b }); err != nil {

@@ -209,8 +209,8 @@ type cart struct {
 
 func newCart(rng *rand.Rand, steps int, from float64) cart {
 	duration := float64(steps) * 0.05
-	speed := 0.4 + 0.5*rng.Float64()   // mean speed, m/s; peaks stay under 2 m/s
-	delta := speed * duration / 5      // ~5 m mean radius
+	speed := 0.4 + 0.5*rng.Float64()     // mean speed, m/s; peaks stay under 2 m/s
+	delta := speed * duration / 5        // ~5 m mean radius
 	delta = math.Min(delta, 1.5*math.Pi) // never lap the loop
 	if rng.IntN(2) == 0 {
 		delta = -delta

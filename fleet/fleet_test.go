@@ -264,7 +264,8 @@ type demoObject struct {
 
 // readObjects lists the log objects under logs as the default include globs
 // do and reads them back, detecting compression by magic bytes: gzip is
-// 1F 8B (RFC 1952 §2.3.1), zstd is 28 B5 2F FD (RFC 8878 §3.1.1).
+// 1F 8B (RFC 1952 §2.3.1), zstd is 28 B5 2F FD (RFC 8878 §3.1.1; section
+// numbers from memory).
 func readObjects(t *testing.T, logs string) []demoObject {
 	t.Helper()
 	var objs []demoObject
@@ -320,11 +321,11 @@ type refFrame struct {
 
 type refFunnel struct {
 	objects, dupObjects, lines, blank, frames, episodes int
-	dropped                                              map[string]int
-	bySource                                             map[string]map[string]int // key → reason → count
-	incomplete                                           []string
-	dupOf                                                map[string]string
-	imgKinds                                             map[string]map[string]bool // key / file / data / jpeg → units
+	dropped                                             map[string]int
+	bySource                                            map[string]map[string]int // key → reason → count
+	incomplete                                          []string
+	dupOf                                               map[string]string
+	imgKinds                                            map[string]map[string]bool // key / file / data / jpeg → units; missing → keys
 }
 
 var unitRE = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
@@ -386,9 +387,10 @@ func vector(raw json.RawMessage) (v []float64, nonFinite, ok bool) {
 	return v, nonFinite, true
 }
 
-// pngComplete checks a PNG datastream: the 8-byte signature (W3C PNG spec
-// §5.2), chunks of length, type, data and a CRC-32 over type and data (§5.3),
-// ending with IEND (§11.2.5) at the end of the bytes.
+// pngComplete checks a PNG datastream: the 8-byte signature (W3C PNG spec /
+// ISO/IEC 15948 §5.2), chunks of length, type, data and a CRC-32 over type
+// and data (§5.3), ending with IEND (§11.2.5) at the end of the bytes
+// (section numbers from memory).
 func pngComplete(b []byte) bool {
 	if !bytes.HasPrefix(b, []byte("\x89PNG\r\n\x1a\n")) {
 		return false
@@ -411,7 +413,7 @@ func pngComplete(b []byte) bool {
 }
 
 // jpegComplete checks for the SOI marker FF D8 first and the EOI marker FF D9
-// last (ITU-T T.81 Annex B.1.1.3 / Table B.1).
+// last (ITU-T T.81 Table B.1, marker codes; from memory).
 func jpegComplete(b []byte) bool {
 	return len(b) >= 4 && b[0] == 0xff && b[1] == 0xd8 && b[len(b)-2] == 0xff && b[len(b)-1] == 0xd9
 }
@@ -447,7 +449,7 @@ func reference(t *testing.T, dir string, objs []demoObject) refFunnel {
 
 	f := refFunnel{
 		dropped: map[string]int{}, bySource: map[string]map[string]int{}, dupOf: map[string]string{},
-		imgKinds: map[string]map[string]bool{"key": {}, "file": {}, "data": {}, "jpeg": {}},
+		imgKinds: map[string]map[string]bool{"key": {}, "file": {}, "data": {}, "jpeg": {}, "missing": {}},
 	}
 	drop := func(key, reason string) {
 		f.dropped[reason]++
@@ -647,6 +649,7 @@ func classify(line []byte, last, incomplete bool, maxLine int, embs map[string]d
 				kinds["jpeg"][fr.unit] = true
 			}
 			if data, err = os.ReadFile(filepath.Join(logs, filepath.FromSlash(*ref))); err != nil {
+				kinds["missing"][*ref] = true
 				return "image_missing", fr
 			}
 		}
@@ -701,7 +704,7 @@ func TestDemoFaults(t *testing.T) {
 	)
 	var withBOM, withCR, unterminated, cutStreams []string
 	for _, o := range objs {
-		if bytes.HasPrefix(o.data, []byte{0xef, 0xbb, 0xbf}) { // UTF-8 BOM, RFC 3629 §6
+		if bytes.HasPrefix(o.data, []byte{0xef, 0xbb, 0xbf}) { // UTF-8 BOM, RFC 3629 §6 (from memory)
 			withBOM = append(withBOM, o.key)
 		}
 		if bytes.Contains(o.data, []byte("\r")) {
@@ -835,6 +838,9 @@ func TestDemoFaults(t *testing.T) {
 	wantKeys("units with file:// images", units("file"), "lark-p6-004")
 	wantKeys("units with data: images", units("data"), "lark-p6-005")
 	wantKeys("units with JPEG images", units("jpeg"), "lark-p6-003", "lark-p6-009")
+	if missing := units("missing"); len(missing) != 1 || !regexp.MustCompile(`^frames/lark-p6-002/wrist-\d{19}\.png$`).MatchString(missing[0]) {
+		t.Errorf("image keys referenced but absent: %v, want one of lark-p6-002", missing)
+	}
 	wantKeys("units with image keys", units("key"), "lark-p6-001", "lark-p6-002", "lark-p6-003", "lark-p6-006",
 		"lark-p6-007", "lark-p6-008", "lark-p6-009", "lark-p6-010")
 
@@ -1115,7 +1121,7 @@ func TestAppendFrame(t *testing.T) {
 	if got := string(appendFrame(nil, &f)); got != want {
 		t.Errorf("appendFrame:\n got %s\nwant %s", got, want)
 	}
-	// RFC 3339 check of the fleet's epoch constant.
+	// The fleet's epoch constant, printed as RFC 3339.
 	if got := time.Unix(0, day0).UTC().Format(time.RFC3339); got != "2026-11-30T00:00:00Z" {
 		t.Errorf("day0 = %s", got)
 	}

@@ -39,7 +39,7 @@ type FrameWriter struct {
 	unit, emb, src, task, episode *array.StringBuilder
 	t, line                       *array.Int64Builder
 	obs, act, imgRef, img         *array.ListBuilder
-	obsV, actV                    *array.Float64Builder
+	obsV, actV                    floatBuilder
 	imgRefV                       *array.StringBuilder
 	imgV                          *array.BinaryBuilder
 	ev                            *array.Int8Builder
@@ -47,20 +47,75 @@ type FrameWriter struct {
 	step                          *array.Int32Builder
 }
 
-// NewFrameWriter starts a frame stream on w.
-func NewFrameWriter(w io.Writer) *FrameWriter {
+// floatBuilder appends float64 values to a float32 or float64 list child.
+type floatBuilder struct {
+	b32 *array.Float32Builder
+	b64 *array.Float64Builder
+}
+
+func newFloatBuilder(b array.Builder) floatBuilder {
+	if b32, ok := b.(*array.Float32Builder); ok {
+		return floatBuilder{b32: b32}
+	}
+	return floatBuilder{b64: b.(*array.Float64Builder)}
+}
+
+func (fb floatBuilder) AppendValues(v []float64, _ []bool) {
+	if fb.b64 != nil {
+		fb.b64.AppendValues(v, nil)
+		return
+	}
+	fb.b32.Reserve(len(v))
+	for _, x := range v {
+		fb.b32.UnsafeAppend(float32(x))
+	}
+}
+
+// floatValues reads a float32 or float64 list child as float64.
+type floatValues struct {
+	v32 []float32
+	v64 []float64
+}
+
+func newFloatValues(a arrow.Array) floatValues {
+	if a32, ok := a.(*array.Float32); ok {
+		return floatValues{v32: a32.Float32Values()}
+	}
+	return floatValues{v64: a.(*array.Float64).Float64Values()}
+}
+
+func (fv floatValues) appendTo(dst []float64, s, e int64) []float64 {
+	if fv.v64 != nil {
+		return append(dst, fv.v64[s:e]...)
+	}
+	for _, x := range fv.v32[s:e] {
+		dst = append(dst, float64(x))
+	}
+	return dst
+}
+
+// ipcOptions compress every buffer with LZ4 frames: the strings (unit,
+// source, episode ids) repeat row after row and shrink many times over,
+// and writing fewer bytes is cheaper than compressing them.
+func ipcOptions(schema *arrow.Schema) []ipc.Option {
+	return []ipc.Option{ipc.WithSchema(schema), ipc.WithLZ4()}
+}
+
+// NewFrameWriter starts a frame stream on w; f32 stores vectors as float32.
+func NewFrameWriter(w io.Writer, f32 bool) *FrameWriter {
 	bw := bufio.NewWriterSize(w, 1<<20)
-	b := array.NewRecordBuilder(memory.DefaultAllocator, schemas.FrameArrow)
-	fw := &FrameWriter{bw: bw, w: ipc.NewWriter(bw, ipc.WithSchema(schemas.FrameArrow)), b: b}
+	schema := schemas.FrameArrow(f32)
+	b := array.NewRecordBuilder(memory.DefaultAllocator, schema)
+	fw := &FrameWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: b}
 	fw.unit = b.Field(0).(*array.StringBuilder)
 	fw.emb = b.Field(1).(*array.StringBuilder)
 	fw.t = b.Field(2).(*array.Int64Builder)
 	fw.src = b.Field(3).(*array.StringBuilder)
 	fw.line = b.Field(4).(*array.Int64Builder)
 	fw.obs = b.Field(5).(*array.ListBuilder)
-	fw.obsV = fw.obs.ValueBuilder().(*array.Float64Builder)
+	fw.obsV = newFloatBuilder(fw.obs.ValueBuilder())
 	fw.act = b.Field(6).(*array.ListBuilder)
-	fw.actV = fw.act.ValueBuilder().(*array.Float64Builder)
+	fw.actV = newFloatBuilder(fw.act.ValueBuilder())
 	fw.ev = b.Field(7).(*array.Int8Builder)
 	fw.task = b.Field(8).(*array.StringBuilder)
 	fw.success = b.Field(9).(*array.BooleanBuilder)
@@ -156,7 +211,7 @@ type FrameReader struct {
 	unit, emb, src, task, episode *array.String
 	t, line                       *array.Int64
 	obs, act, imgRef, img         *array.List
-	obsV, actV                    *array.Float64
+	obsV, actV                    floatValues
 	imgRefV                       *array.String
 	imgV                          *array.Binary
 	ev                            *array.Int8
@@ -166,7 +221,7 @@ type FrameReader struct {
 
 // NewFrameReader starts reading a frame stream.
 func NewFrameReader(r io.Reader) (*FrameReader, error) {
-	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.FrameArrow))
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20))
 	if err != nil {
 		return nil, err
 	}
@@ -190,12 +245,12 @@ func (fr *FrameReader) Next(f *schemas.Frame) bool {
 	f.Src = sameOrClone(f.Src, fr.src.Value(i))
 	f.Line = fr.line.Value(i)
 	s, e := fr.obs.ValueOffsets(i)
-	f.Obs = append(f.Obs[:0], fr.obsV.Float64Values()[s:e]...)
+	f.Obs = fr.obsV.appendTo(f.Obs[:0], s, e)
 	f.HasAct = fr.act.IsValid(i)
 	f.Act = f.Act[:0]
 	if f.HasAct {
 		s, e = fr.act.ValueOffsets(i)
-		f.Act = append(f.Act, fr.actV.Float64Values()[s:e]...)
+		f.Act = fr.actV.appendTo(f.Act, s, e)
 	}
 	f.Ev = schemas.Event(fr.ev.Value(i))
 	f.HasTask = fr.task.IsValid(i)
@@ -237,9 +292,9 @@ func (fr *FrameReader) bind(rec arrow.RecordBatch) {
 	fr.src = rec.Column(3).(*array.String)
 	fr.line = rec.Column(4).(*array.Int64)
 	fr.obs = rec.Column(5).(*array.List)
-	fr.obsV = fr.obs.ListValues().(*array.Float64)
+	fr.obsV = newFloatValues(fr.obs.ListValues())
 	fr.act = rec.Column(6).(*array.List)
-	fr.actV = fr.act.ListValues().(*array.Float64)
+	fr.actV = newFloatValues(fr.act.ListValues())
 	fr.ev = rec.Column(7).(*array.Int8)
 	fr.task = rec.Column(8).(*array.String)
 	fr.success = rec.Column(9).(*array.Boolean)
@@ -276,8 +331,9 @@ type GoalWriter struct {
 // NewGoalWriter starts a goal stream on w.
 func NewGoalWriter(w io.Writer) *GoalWriter {
 	bw := bufio.NewWriterSize(w, 1<<20)
-	b := array.NewRecordBuilder(memory.DefaultAllocator, schemas.GoalArrow)
-	gw := &GoalWriter{bw: bw, w: ipc.NewWriter(bw, ipc.WithSchema(schemas.GoalArrow)), b: b}
+	schema := schemas.GoalArrow()
+	b := array.NewRecordBuilder(memory.DefaultAllocator, schema)
+	gw := &GoalWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: b}
 	gw.episode = b.Field(0).(*array.StringBuilder)
 	gw.step = b.Field(1).(*array.Int32Builder)
 	gw.strategy = b.Field(2).(*array.Int8Builder)
@@ -298,8 +354,12 @@ func (gw *GoalWriter) Write(g *schemas.Goal) error {
 	gw.goalEpisode.Append(g.GoalEpisode)
 	gw.goalStep.Append(g.GoalStep)
 	gw.goalOff.Append(g.GoalOffset)
-	gw.goal.Append(true)
-	gw.goalV.AppendValues(g.Goal, nil)
+	if g.Strategy == schemas.Negative {
+		gw.goal.Append(true)
+		gw.goalV.AppendValues(g.Goal, nil)
+	} else {
+		gw.goal.AppendNull()
+	}
 	gw.reward.Append(g.Reward)
 	gw.rows++
 	if gw.rows >= 4*batchRows {
@@ -345,7 +405,7 @@ type GoalReader struct {
 
 // NewGoalReader starts reading a goal stream.
 func NewGoalReader(r io.Reader) (*GoalReader, error) {
-	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.GoalArrow))
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.GoalArrow()))
 	if err != nil {
 		return nil, err
 	}
@@ -353,6 +413,7 @@ func NewGoalReader(r io.Reader) (*GoalReader, error) {
 }
 
 // Next reads the next goal into g; false at the end or on error (see Err).
+// g.Goal is filled for negatives only (see schemas.GoalArrow).
 func (gr *GoalReader) Next(g *schemas.Goal) bool {
 	for gr.i >= gr.n {
 		if !gr.r.Next() {

@@ -46,6 +46,9 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	if err != nil {
 		return nil, err
 	}
+	if ls, ok := out.(*LocalStore); ok {
+		ls.Durable = true
+	}
 	// Refuse an existing version before doing any work.
 	prefix := VersionPrefix(cfg.Dataset, opt.Version)
 	if _, err := out.Stat(ctx, prefix+ManifestName); err == nil {

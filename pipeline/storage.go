@@ -117,6 +117,10 @@ func OpenStore(ctx context.Context, uri string) (Store, error) {
 // partial object and a crash leaves only a temporary file that List ignores.
 type LocalStore struct {
 	root string
+	// Durable makes every commit fsync the file before it is renamed into
+	// place: wanted for published versions, not for the work area, where a
+	// lost item is only redone.
+	Durable bool
 }
 
 // NewLocalStore returns a Store rooted at the folder dir (which need not exist yet).
@@ -241,7 +245,7 @@ func (s *LocalStore) Create(ctx context.Context, key string) (Upload, error) {
 	if err != nil {
 		return nil, fmt.Errorf("create %s: %w", JoinURI(s.URI(), key), err)
 	}
-	return &localUpload{f: f, dst: dst, uri: JoinURI(s.URI(), key)}, nil
+	return &localUpload{f: f, dst: dst, uri: JoinURI(s.URI(), key), sync: s.Durable}, nil
 }
 
 // Delete implements Store.
@@ -295,6 +299,7 @@ type localUpload struct {
 	f    *os.File
 	dst  string
 	uri  string
+	sync bool
 	done bool
 }
 
@@ -306,10 +311,12 @@ func (u *localUpload) Commit(exclusive bool) error {
 	}
 	u.done = true
 	tmp := u.f.Name()
-	if err := u.f.Sync(); err != nil {
-		u.f.Close()
-		os.Remove(tmp)
-		return fmt.Errorf("commit %s: %w", u.uri, err)
+	if u.sync {
+		if err := u.f.Sync(); err != nil {
+			u.f.Close()
+			os.Remove(tmp)
+			return fmt.Errorf("commit %s: %w", u.uri, err)
+		}
 	}
 	if err := u.f.Close(); err != nil {
 		os.Remove(tmp)

@@ -95,25 +95,33 @@ func equalStrings(a, b []string) bool {
 }
 
 // FrameArrow is the Arrow schema of frame intermediates (ingest runs and
-// episode files): one schema for both, the episode columns null before the
-// episodes stage fills them.
-var FrameArrow = arrow.NewSchema([]arrow.Field{
-	{Name: "unit", Type: arrow.BinaryTypes.String},
-	{Name: "embodiment", Type: arrow.BinaryTypes.String},
-	{Name: "t", Type: arrow.PrimitiveTypes.Int64},
-	{Name: "src", Type: arrow.BinaryTypes.String},
-	{Name: "src_line", Type: arrow.PrimitiveTypes.Int64},
-	{Name: "obs", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64)},
-	{Name: "act", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64), Nullable: true},
-	{Name: "ev", Type: arrow.PrimitiveTypes.Int8},
-	{Name: "task", Type: arrow.BinaryTypes.String, Nullable: true},
-	{Name: "success", Type: arrow.FixedWidthTypes.Boolean, Nullable: true},
-	{Name: "img_ref", Type: arrow.ListOf(arrow.BinaryTypes.String)},
-	{Name: "img", Type: arrow.ListOf(arrow.BinaryTypes.Binary)},
-	{Name: "episode", Type: arrow.BinaryTypes.String},
-	{Name: "step", Type: arrow.PrimitiveTypes.Int32},
-	{Name: "last", Type: arrow.FixedWidthTypes.Boolean},
-}, nil)
+// episode files): one schema for both, the episode columns empty before the
+// episodes stage fills them. Vectors are stored in the output float type:
+// ingest has rounded them already, so float32 storage loses nothing and
+// halves what the stages write and read.
+func FrameArrow(f32 bool) *arrow.Schema {
+	var elem arrow.DataType = arrow.PrimitiveTypes.Float64
+	if f32 {
+		elem = arrow.PrimitiveTypes.Float32
+	}
+	return arrow.NewSchema([]arrow.Field{
+		{Name: "unit", Type: arrow.BinaryTypes.String},
+		{Name: "embodiment", Type: arrow.BinaryTypes.String},
+		{Name: "t", Type: arrow.PrimitiveTypes.Int64},
+		{Name: "src", Type: arrow.BinaryTypes.String},
+		{Name: "src_line", Type: arrow.PrimitiveTypes.Int64},
+		{Name: "obs", Type: arrow.ListOf(elem)},
+		{Name: "act", Type: arrow.ListOf(elem), Nullable: true},
+		{Name: "ev", Type: arrow.PrimitiveTypes.Int8},
+		{Name: "task", Type: arrow.BinaryTypes.String, Nullable: true},
+		{Name: "success", Type: arrow.FixedWidthTypes.Boolean, Nullable: true},
+		{Name: "img_ref", Type: arrow.ListOf(arrow.BinaryTypes.String)},
+		{Name: "img", Type: arrow.ListOf(arrow.BinaryTypes.Binary)},
+		{Name: "episode", Type: arrow.BinaryTypes.String},
+		{Name: "step", Type: arrow.PrimitiveTypes.Int32},
+		{Name: "last", Type: arrow.FixedWidthTypes.Boolean},
+	}, nil)
+}
 
 // Goal is one relabeled goal of one step (SPEC §3.3), as the goals stage
 // hands it to pack: the goal frame's coordinates, not its vectors, plus the
@@ -144,14 +152,18 @@ func StrategyNames() [4]string { return [4]string{"future", "geometric", "final"
 
 func (s Strategy) String() string { return StrategyNames()[s] }
 
-// GoalArrow is the Arrow schema of the goals intermediate.
-var GoalArrow = arrow.NewSchema([]arrow.Field{
-	{Name: "episode", Type: arrow.BinaryTypes.String},
-	{Name: "step", Type: arrow.PrimitiveTypes.Int32},
-	{Name: "strategy", Type: arrow.PrimitiveTypes.Int8},
-	{Name: "goal_episode", Type: arrow.BinaryTypes.String},
-	{Name: "goal_step", Type: arrow.PrimitiveTypes.Int32},
-	{Name: "goal_offset", Type: arrow.PrimitiveTypes.Int32},
-	{Name: "goal", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64)},
-	{Name: "reward", Type: arrow.PrimitiveTypes.Float32},
-}, nil)
+// GoalArrow is the Arrow schema of the goals intermediate. The goal vector is
+// stored only for negatives: pack has the episode in hand and projects the
+// goal frame of every other strategy itself.
+func GoalArrow() *arrow.Schema {
+	return arrow.NewSchema([]arrow.Field{
+		{Name: "episode", Type: arrow.BinaryTypes.String},
+		{Name: "step", Type: arrow.PrimitiveTypes.Int32},
+		{Name: "strategy", Type: arrow.PrimitiveTypes.Int8},
+		{Name: "goal_episode", Type: arrow.BinaryTypes.String},
+		{Name: "goal_step", Type: arrow.PrimitiveTypes.Int32},
+		{Name: "goal_offset", Type: arrow.PrimitiveTypes.Int32},
+		{Name: "goal", Type: arrow.ListOf(arrow.PrimitiveTypes.Float64), Nullable: true},
+		{Name: "reward", Type: arrow.PrimitiveTypes.Float32},
+	}, nil)
+}

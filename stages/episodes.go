@@ -73,14 +73,15 @@ const episodeBufferBytes = 48 << 20
 // Do implements pipeline.Stage.
 func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
 	in := it.Meta.(episodesInput)
+	f32 := env.Config.Float == "float32"
 	dir := pipeline.ItemDir(st.Name(), it.Key)
 	sum := pipeline.EpisodesSummary{Partition: in.Partition, File: dir + "episodes.arrow", Dropped: map[string]map[string]int64{}}
-	src, closeAll, err := openMerged(ctx, env.Work, dir+"merge/", in.Runs, byUnitTime)
+	src, closeAll, err := openMerged(ctx, env.Work, dir+"merge/", in.Runs, byUnitTime, f32)
 	if err != nil {
 		return nil, err
 	}
 	defer closeAll()
-	out := &episodeSink{ctx: ctx, work: env.Work, dir: dir}
+	out := &episodeSink{ctx: ctx, work: env.Work, dir: dir, f32: f32}
 	seg := newSegmenter(env.Config.Episodes, func(src, reason string) {
 		m := sum.Dropped[src]
 		if m == nil {
@@ -228,6 +229,7 @@ type episodeSink struct {
 	size  int
 	runs  []string
 	infos []pipeline.EpisodeInfo
+	f32   bool
 }
 
 func (o *episodeSink) add(ep []schemas.Frame) error {
@@ -259,7 +261,7 @@ func (o *episodeSink) spill(key string) error {
 	for _, ep := range o.buf {
 		flat = append(flat, ep...)
 	}
-	if err := writeFrames(o.ctx, o.work, key, flat); err != nil {
+	if err := writeFrames(o.ctx, o.work, key, flat, o.f32); err != nil {
 		return err
 	}
 	o.runs = append(o.runs, key)
@@ -279,11 +281,11 @@ func (o *episodeSink) close(final string) ([]pipeline.EpisodeInfo, int64, error)
 				return nil, 0, err
 			}
 		}
-		src, closeAll, err := openMerged(o.ctx, o.work, o.dir+"merge/pass-", o.runs, byEpisodeStep)
+		src, closeAll, err := openMerged(o.ctx, o.work, o.dir+"merge/pass-", o.runs, byEpisodeStep, o.f32)
 		if err != nil {
 			return nil, 0, err
 		}
-		err = copyFrames(o.ctx, o.work, final, src)
+		err = copyFrames(o.ctx, o.work, final, src, o.f32)
 		closeAll()
 		if err != nil {
 			return nil, 0, err
@@ -318,12 +320,12 @@ func indexEpisodes(ctx context.Context, work pipeline.Store, key string) ([]pipe
 }
 
 // copyFrames writes every frame of src to a new work object.
-func copyFrames(ctx context.Context, work pipeline.Store, key string, src pipeline.FrameSource) error {
+func copyFrames(ctx context.Context, work pipeline.Store, key string, src pipeline.FrameSource, f32 bool) error {
 	up, err := work.Create(ctx, key)
 	if err != nil {
 		return err
 	}
-	fw := pipeline.NewFrameWriter(up)
+	fw := pipeline.NewFrameWriter(up, f32)
 	var f schemas.Frame
 	for src.Next(&f) {
 		if err := fw.Write(&f); err != nil {
@@ -345,7 +347,7 @@ func copyFrames(ctx context.Context, work pipeline.Store, key string, src pipeli
 // openMerged opens runs (each sorted by less) as one sorted source. With more
 // than maxFanIn runs it first merges groups of them into new runs under
 // tmpPrefix, so the number of open streams stays bounded.
-func openMerged(ctx context.Context, work pipeline.Store, tmpPrefix string, runs []string, less func(a, b *schemas.Frame) bool) (pipeline.FrameSource, func(), error) {
+func openMerged(ctx context.Context, work pipeline.Store, tmpPrefix string, runs []string, less func(a, b *schemas.Frame) bool, f32 bool) (pipeline.FrameSource, func(), error) {
 	for pass := 0; len(runs) > maxFanIn; pass++ {
 		var next []string
 		for i := 0; i < len(runs); i += maxFanIn {
@@ -355,7 +357,7 @@ func openMerged(ctx context.Context, work pipeline.Store, tmpPrefix string, runs
 			if err != nil {
 				return nil, nil, err
 			}
-			err = copyFrames(ctx, work, key, src)
+			err = copyFrames(ctx, work, key, src, f32)
 			closeAll()
 			if err != nil {
 				return nil, nil, err

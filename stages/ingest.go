@@ -373,7 +373,7 @@ func (in *ingester) flush(ctx context.Context) error {
 		}
 		name := pipeline.PartName(p)
 		key := fmt.Sprintf("%sp%s-r%04d.arrow", in.dir, name, in.runs)
-		if err := writeFrames(ctx, in.env.Work, key, in.chunk[i:j]); err != nil {
+		if err := writeFrames(ctx, in.env.Work, key, in.chunk[i:j], in.env.Config.Float == "float32"); err != nil {
 			return err
 		}
 		in.sum.Runs[name] = append(in.sum.Runs[name], key)
@@ -386,12 +386,12 @@ func (in *ingester) flush(ctx context.Context) error {
 }
 
 // writeFrames writes frames as one sealed object of the work store.
-func writeFrames(ctx context.Context, work pipeline.Store, key string, frames []schemas.Frame) error {
+func writeFrames(ctx context.Context, work pipeline.Store, key string, frames []schemas.Frame, f32 bool) error {
 	up, err := work.Create(ctx, key)
 	if err != nil {
 		return err
 	}
-	fw := pipeline.NewFrameWriter(up)
+	fw := pipeline.NewFrameWriter(up, f32)
 	for i := range frames {
 		if err := fw.Write(&frames[i]); err != nil {
 			up.Abort()

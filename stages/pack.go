@@ -1,6 +1,7 @@
 package stages
 
 import (
+	"bufio"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -109,67 +110,114 @@ type shard struct {
 	file    pipeline.PackedFile
 	up      pipeline.Upload
 	hw      *hashWriter
+	bw      *bufio.Writer
 	frames  *parquet.Writer
 	pairs   pairWriter
 	rowsBuf []parquet.Row
 }
 
-// pairWriter hides the output float type of the pairs writer.
+// pairWriter hides the output float type of the pairs writer. Rows are
+// gathered one episode at a time: begin converts the episode's vectors once,
+// every row of the episode shares them, and end writes the rows before the
+// buffers are reused.
 type pairWriter interface {
-	add(f, next *schemas.Frame, g *schemas.Goal, strategy string, reached bool) error
+	begin(ep []schemas.Frame, goalDims []int)
+	add(g *schemas.Goal, goalEpisode, strategy string) error
+	end() error
 	Close() error
 }
 
 type typedPairs[F schemas.Float] struct {
-	w   *parquet.GenericWriter[schemas.PairRow[F]]
-	buf []schemas.PairRow[F]
+	w    *parquet.GenericWriter[schemas.PairRow[F]]
+	ep   []schemas.Frame
+	obs  [][]F // per step
+	act  [][]F // per step, nil when absent
+	goal [][]F // per step, the goal-dim projection
+	neg  []F   // negatives' goal vectors, for the current episode
+	rows []schemas.PairRow[F]
 }
 
-func toF[F schemas.Float](dst []F, v []float64) []F {
-	dst = dst[:0]
-	for _, x := range v {
-		dst = append(dst, F(x))
-	}
-	return dst
-}
-
-func (p *typedPairs[F]) add(f, next *schemas.Frame, g *schemas.Goal, strategy string, reached bool) error {
-	p.buf = append(p.buf, schemas.PairRow[F]{})
-	r := &p.buf[len(p.buf)-1]
-	*r = schemas.PairRow[F]{
-		Episode: f.Episode, Step: f.Step, T: f.T, Unit: f.Unit, Embodiment: f.Embodiment,
-		Obs: toF(r.Obs, f.Obs), NextObs: toF(r.NextObs, next.Obs),
-		GoalEpisode: g.GoalEpisode, GoalStep: g.GoalStep, GoalOffset: g.GoalOffset,
-		Goal: toF(r.Goal, g.Goal), Reward: g.Reward, Reached: reached, Strategy: strategy,
-		Src: f.Src, SrcLine: f.Line,
-	}
-	if f.HasAct {
-		r.Act = toF(r.Act[:0], f.Act)
-		if r.Act == nil {
-			r.Act = []F{}
+// vectors converts every step's vector into one flat slice per episode.
+func vectors[F schemas.Float](dst [][]F, flat []F, n int, get func(i int) ([]float64, bool)) ([][]F, []F) {
+	dst, flat = dst[:0], flat[:0]
+	var ends []int
+	for i := range n {
+		v, ok := get(i)
+		if !ok {
+			ends = append(ends, -1)
+			continue
 		}
+		for _, x := range v {
+			flat = append(flat, F(x))
+		}
+		ends = append(ends, len(flat))
 	}
-	if len(p.buf) == cap(p.buf) {
-		return p.flush()
+	start := 0
+	for _, e := range ends {
+		if e < 0 {
+			dst = append(dst, nil)
+			continue
+		}
+		dst = append(dst, flat[start:e:e])
+		start = e
 	}
+	return dst, flat
+}
+
+func (p *typedPairs[F]) begin(ep []schemas.Frame, goalDims []int) {
+	p.ep = ep
+	n := len(ep)
+	p.obs, _ = vectors(p.obs, nil, n, func(i int) ([]float64, bool) { return ep[i].Obs, true })
+	p.act, _ = vectors(p.act, nil, n, func(i int) ([]float64, bool) {
+		if !ep[i].HasAct {
+			return nil, false
+		}
+		return ep[i].Act, true
+	})
+	proj := make([]float64, 0, len(goalDims))
+	p.goal, _ = vectors(p.goal, nil, n, func(i int) ([]float64, bool) {
+		return project(proj[:0], ep[i].Obs, goalDims), true
+	})
+	p.neg = p.neg[:0]
+	p.rows = p.rows[:0]
+}
+
+func (p *typedPairs[F]) add(g *schemas.Goal, goalEpisode, strategy string) error {
+	f := &p.ep[g.Step]
+	goal := p.goal[g.GoalStep]
+	if g.Strategy == schemas.Negative {
+		start := len(p.neg)
+		for _, x := range g.Goal {
+			p.neg = append(p.neg, F(x))
+		}
+		goal = p.neg[start:len(p.neg):len(p.neg)]
+	}
+	act := p.act[g.Step]
+	if act == nil && f.HasAct {
+		act = []F{}
+	}
+	p.rows = append(p.rows, schemas.PairRow[F]{
+		Episode: f.Episode, Step: f.Step, T: f.T, Unit: f.Unit, Embodiment: f.Embodiment,
+		Obs: p.obs[g.Step], Act: act, NextObs: p.obs[g.Step+1],
+		GoalEpisode: goalEpisode, GoalStep: g.GoalStep, GoalOffset: g.GoalOffset,
+		Goal: goal, Reward: g.Reward, Reached: g.Reward == 1, Strategy: strategy,
+		Src: f.Src, SrcLine: f.Line,
+	})
 	return nil
 }
 
-func (p *typedPairs[F]) flush() error {
-	if len(p.buf) == 0 {
+func (p *typedPairs[F]) end() error {
+	if len(p.rows) == 0 {
 		return nil
 	}
-	_, err := p.w.Write(p.buf)
-	p.buf = p.buf[:0]
+	// Negatives' vectors point into p.neg; an append that grew it left the
+	// earlier ones in the old array, which is never written again.
+	_, err := p.w.Write(p.rows)
+	p.rows = p.rows[:0]
 	return err
 }
 
-func (p *typedPairs[F]) Close() error {
-	if err := p.flush(); err != nil {
-		return err
-	}
-	return p.w.Close()
-}
+func (p *typedPairs[F]) Close() error { return p.w.Close() }
 
 // Do implements pipeline.Stage.
 func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
@@ -215,15 +263,16 @@ func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any
 		if err != nil {
 			return nil, err
 		}
-		s := &shard{up: up, hw: &hashWriter{w: up, h: sha256.New()},
+		hw := &hashWriter{w: up, h: sha256.New()}
+		s := &shard{up: up, hw: hw, bw: bufio.NewWriterSize(hw, 1<<20),
 			file: pipeline.PackedFile{Path: path, Work: dir + path, Table: table, Split: split, Partition: part}}
 		opts := options(table, split)
 		if table == "frames" {
-			s.frames = parquet.NewWriter(s.hw, append(opts, ft.Schema)...)
+			s.frames = parquet.NewWriter(s.bw, append(opts, ft.Schema)...)
 		} else if cfg.Float == "float32" {
-			s.pairs = &typedPairs[float32]{w: parquet.NewGenericWriter[schemas.PairRow[float32]](s.hw, opts...), buf: make([]schemas.PairRow[float32], 0, 1024)}
+			s.pairs = &typedPairs[float32]{w: parquet.NewGenericWriter[schemas.PairRow[float32]](s.bw, opts...)}
 		} else {
-			s.pairs = &typedPairs[float64]{w: parquet.NewGenericWriter[schemas.PairRow[float64]](s.hw, opts...), buf: make([]schemas.PairRow[float64], 0, 1024)}
+			s.pairs = &typedPairs[float64]{w: parquet.NewGenericWriter[schemas.PairRow[float64]](s.bw, opts...)}
 		}
 		shards[[2]string{table, split}] = s
 		return s, nil
@@ -315,14 +364,14 @@ func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any
 					return nil, err
 				}
 				ps.file.Episodes++
+				ps.pairs.begin(ep, cfg.Embodiments[emb].GoalDims)
 			}
-			step := int(g.Step)
-			if step+1 >= len(ep) {
+			if int(g.Step)+1 >= len(ep) || int(g.GoalStep) >= len(ep) && g.Strategy != schemas.Negative {
 				abortAll()
-				return nil, fmt.Errorf("goal of %s at step %d beyond its %d steps", id, step, len(ep))
+				return nil, fmt.Errorf("goal of %s at step %d beyond its %d steps", id, g.Step, len(ep))
 			}
 			name := names[g.Strategy]
-			if err := ps.pairs.add(&ep[step], &ep[step+1], &g, name, g.Reward == 1); err != nil {
+			if err := ps.pairs.add(&g, g.GoalEpisode, name); err != nil {
 				abortAll()
 				return nil, fmt.Errorf("write pairs of %s: %w", id, err)
 			}
@@ -335,6 +384,12 @@ func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any
 			}
 			off[g.GoalOffset]++
 			haveG = gr.Next(&g)
+		}
+		if ps != nil {
+			if err := ps.pairs.end(); err != nil {
+				abortAll()
+				return nil, fmt.Errorf("write pairs of %s: %w", id, err)
+			}
 		}
 		if haveG && g.Episode < id {
 			abortAll()
@@ -360,6 +415,9 @@ func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any
 			err = s.frames.Close()
 		} else {
 			err = s.pairs.Close()
+		}
+		if err == nil {
+			err = s.bw.Flush()
 		}
 		if err != nil {
 			abortAll()
