@@ -184,13 +184,16 @@ func (p *typedPairs[F]) begin(ep []schemas.Frame, goalDims []int) {
 
 func (p *typedPairs[F]) add(g *schemas.Goal, goalEpisode, strategy string) error {
 	f := &p.ep[g.Step]
-	goal := p.goal[g.GoalStep]
+	var goal []F
 	if g.Strategy == schemas.Negative {
+		// The goal frame is in another episode: its vector came with the goal.
 		start := len(p.neg)
 		for _, x := range g.Goal {
 			p.neg = append(p.neg, F(x))
 		}
 		goal = p.neg[start:len(p.neg):len(p.neg)]
+	} else {
+		goal = p.goal[g.GoalStep]
 	}
 	act := p.act[g.Step]
 	if act == nil && f.HasAct {
