@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"runtime/debug"
 	"sort"
 	"sync/atomic"
 	"time"
@@ -196,7 +197,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			if err := DeletePrefix(gctx, env.Work, dir); err != nil {
 				return fmt.Errorf("%s %s: clear: %w", st.Name(), it.ID, err)
 			}
-			out, err := st.Do(gctx, env, it)
+			out, err := safeDo(gctx, env, st, it)
 			if err != nil {
 				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, err)
 			}
@@ -237,4 +238,15 @@ func LoadSealed(ctx context.Context, work Store, stage, key string) (json.RawMes
 		return nil, false, nil
 	}
 	return rec.Summary, true, nil
+}
+
+// safeDo runs one item and turns a panic into that item's error, so a bug
+// fails the run (exit 1, nothing committed) instead of killing the process.
+func safeDo(ctx context.Context, env *Env, st Stage, it Item) (out any, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			err = fmt.Errorf("internal error: %v\n%s", r, debug.Stack())
+		}
+	}()
+	return st.Do(ctx, env, it)
 }

@@ -10,6 +10,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/parquet-go/parquet-go"
 	"gopkg.in/yaml.v3"
 
 	"hindcast/pipeline"
@@ -215,4 +216,49 @@ func mustJSON(t *testing.T, v any) string {
 		t.Fatalf("encode %v: %v", v, err)
 	}
 	return string(b)
+}
+
+// shardFrame is one row of a committed frames table (SPEC §4), the columns
+// the stages tests look at. F is the config's float type.
+type shardFrame[F float32 | float64] struct {
+	Episode    string  `parquet:"episode"`
+	Step       int32   `parquet:"step"`
+	T          int64   `parquet:"t,timestamp(nanosecond)"`
+	Unit       string  `parquet:"unit"`
+	Embodiment string  `parquet:"embodiment"`
+	Obs        []F     `parquet:"obs,list"`
+	Act        []F     `parquet:"act,optional,list"`
+	Task       *string `parquet:"task,optional"`
+	Success    *bool   `parquet:"success,optional"`
+	Last       bool    `parquet:"last"`
+	Src        string  `parquet:"src"`
+	SrcLine    int64   `parquet:"src_line"`
+}
+
+// readShardFrames reads every frames file the manifest lists, in path
+// order, and returns the rows sorted by (episode, step), the frames table's
+// own order within a file (SPEC §4).
+func readShardFrames[F float32 | float64](t *testing.T, r *pipelineRun) []shardFrame[F] {
+	t.Helper()
+	var rows []shardFrame[F]
+	for _, f := range r.Manifest.Files {
+		if f.Table != "frames" {
+			continue
+		}
+		got, err := parquet.ReadFile[shardFrame[F]](filepath.Join(r.Version, filepath.FromSlash(f.Path)))
+		if err != nil {
+			t.Fatalf("read %s: %v", f.Path, err)
+		}
+		if int64(len(got)) != f.Rows {
+			t.Fatalf("%s: %d rows, the manifest says %d", f.Path, len(got), f.Rows)
+		}
+		rows = append(rows, got...)
+	}
+	slices.SortStableFunc(rows, func(a, b shardFrame[F]) int {
+		if c := strings.Compare(a.Episode, b.Episode); c != 0 {
+			return c
+		}
+		return int(a.Step) - int(b.Step)
+	})
+	return rows
 }
