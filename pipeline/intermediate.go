@@ -23,9 +23,13 @@ import (
 // batchRows and batchBytes bound one record batch: rows for vectors, bytes for
 // frames that carry camera images.
 const (
-	batchRows  = 4096
-	batchBytes = 8 << 20
+	batchRows  = 1024
+	batchBytes = 4 << 20
 )
+
+// readBuffer is the read-ahead of one intermediate stream. A merge holds
+// up to maxFanIn streams open, so this and a batch bound its memory.
+const readBuffer = 128 << 10
 
 // FrameWriter appends frames to an Arrow IPC stream.
 type FrameWriter struct {
@@ -221,7 +225,7 @@ type FrameReader struct {
 
 // NewFrameReader starts reading a frame stream.
 func NewFrameReader(r io.Reader) (*FrameReader, error) {
-	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20))
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, readBuffer))
 	if err != nil {
 		return nil, err
 	}
@@ -362,7 +366,7 @@ func (gw *GoalWriter) Write(g *schemas.Goal) error {
 	}
 	gw.reward.Append(g.Reward)
 	gw.rows++
-	if gw.rows >= 4*batchRows {
+	if gw.rows >= 16*batchRows {
 		return gw.flush()
 	}
 	return nil
@@ -405,7 +409,7 @@ type GoalReader struct {
 
 // NewGoalReader starts reading a goal stream.
 func NewGoalReader(r io.Reader) (*GoalReader, error) {
-	ir, err := ipc.NewReader(bufio.NewReaderSize(r, 1<<20), ipc.WithSchema(schemas.GoalArrow()))
+	ir, err := ipc.NewReader(bufio.NewReaderSize(r, readBuffer), ipc.WithSchema(schemas.GoalArrow()))
 	if err != nil {
 		return nil, err
 	}

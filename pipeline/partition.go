@@ -14,17 +14,31 @@ func PartitionOf(unit string, partitions int) int {
 }
 
 // SplitOf is SPEC §3.4: u = BE_uint64(sha256(key)[0:8]) / 2^64; train when
-// u < train, val when u < train + val, else test.
+// u < train, val when u < train + val, else test. The comparison is done
+// exactly on integers (x < ⌈f·2^64⌉), since turning x into a float64 would
+// round keys near a threshold across it.
 func SplitOf(key string, s SplitConfig) string {
 	h := sha256.Sum256([]byte(key))
-	u := float64(binary.BigEndian.Uint64(h[:8])) / math.Exp2(64)
+	x := binary.BigEndian.Uint64(h[:8])
 	switch {
-	case u < s.Train:
+	case below(x, s.Train):
 		return "train"
-	case u < s.Train+s.Val:
+	case below(x, s.Train+s.Val):
 		return "val"
 	}
 	return "test"
+}
+
+// below reports x / 2^64 < f exactly.
+func below(x uint64, f float64) bool {
+	if f <= 0 {
+		return false
+	}
+	t := math.Ceil(math.Ldexp(f, 64)) // exact: scaling by a power of two
+	if t >= math.Ldexp(1, 64) {
+		return true
+	}
+	return x < uint64(t)
 }
 
 // Splits lists the split names in output order.

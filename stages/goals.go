@@ -122,10 +122,22 @@ func project(dst, obs []float64, dims []int) []float64 {
 // episode id) alone, so a draw never depends on which worker ran it or on
 // what else is in the partition.
 func EpisodeRNG(seed int64, episode string) *rand.Rand {
+	return streamRNG("hindcast-goals", seed, episode)
+}
+
+// NegativeRNG is the generator of one episode's negative draws. It is a
+// stream of its own so that an episode's future, geometric and final goals
+// stay the same whether or not negatives can be drawn for it (which depends
+// on the other episodes in its partition).
+func NegativeRNG(seed int64, episode string) *rand.Rand {
+	return streamRNG("hindcast-negatives", seed, episode)
+}
+
+func streamRNG(stream string, seed int64, episode string) *rand.Rand {
 	h := sha256.New()
 	var b [8]byte
 	binary.BigEndian.PutUint64(b[:], uint64(seed))
-	h.Write([]byte("hindcast-goals\x00"))
+	h.Write([]byte(stream + "\x00"))
 	h.Write(b[:])
 	h.Write([]byte(episode))
 	s := h.Sum(nil)
@@ -176,6 +188,7 @@ func relabel(cfg *pipeline.Config, emb *pipeline.Embodiment, id string, idx int,
 	var others []int
 	self := 0
 	var negBuf []float64
+	var nr *rand.Rand
 	if neg != nil {
 		others = neg.byEmb[all[idx].Embodiment]
 		self, _ = slices.BinarySearch(others, idx)
@@ -217,14 +230,17 @@ func relabel(cfg *pipeline.Config, emb *pipeline.Embodiment, id string, idx int,
 		if neg == nil || len(others) < 2 {
 			continue
 		}
+		if nr == nil {
+			nr = NegativeRNG(cfg.Seed, id)
+		}
 		for range gc.Negative {
 			// A draw on the other episodes: positions 0…m−2, shifted past self.
-			pos := r.IntN(len(others) - 1)
+			pos := nr.IntN(len(others) - 1)
 			if pos >= self {
 				pos++
 			}
 			ep := others[pos]
-			gs := r.IntN(all[ep].Steps)
+			gs := nr.IntN(all[ep].Steps)
 			goal, err := neg.goal(negBuf, ep, gs)
 			if err != nil {
 				return n, err

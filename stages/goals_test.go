@@ -1118,6 +1118,17 @@ float: float64
 			t.Errorf("%s step %d: strategy %q", r.Episode, r.Step, r.Strategy)
 		}
 	}
+	reached := 0
+	for _, r := range rows {
+		if r.Reached {
+			reached++
+		}
+	}
+	// The fixture moves 1 per step, so only goals one step ahead (or equal)
+	// are reached: both outcomes occur, the reward check above is not idle.
+	if reached == 0 || reached == len(rows) {
+		t.Errorf("%d of %d pairs reached: the fixture should give both rewards", reached, len(rows))
+	}
 	for id, n := range wantRows {
 		if gotRows[id] != n {
 			t.Errorf("%s: %d pairs, want %d", id, gotRows[id], n)

@@ -1,6 +1,8 @@
 package stages
 
 import (
+	"bytes"
+	"compress/gzip"
 	"context"
 	"encoding/json"
 	"maps"
@@ -10,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/klauspost/compress/zstd"
 	"github.com/parquet-go/parquet-go"
 	"gopkg.in/yaml.v3"
 
@@ -206,6 +209,30 @@ func jsonLines(lines ...string) []byte {
 		return nil
 	}
 	return []byte(strings.Join(lines, "\n") + "\n")
+}
+
+// gzipBytes and zstdBytes compress a whole object, as a fleet uploader does.
+func gzipBytes(t *testing.T, b []byte) []byte {
+	t.Helper()
+	var buf bytes.Buffer
+	w := gzip.NewWriter(&buf)
+	if _, err := w.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+	return buf.Bytes()
+}
+
+func zstdBytes(t *testing.T, b []byte) []byte {
+	t.Helper()
+	enc, err := zstd.NewWriter(nil, zstd.WithEncoderConcurrency(1))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer enc.Close()
+	return enc.EncodeAll(b, nil)
 }
 
 // mustJSON encodes v for building log lines in tests.

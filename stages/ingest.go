@@ -87,7 +87,7 @@ func ListSource(ctx context.Context, env *pipeline.Env) ([]pipeline.ObjectInfo, 
 
 // chunkBytes bounds the frames an ingest item holds before it sorts them and
 // writes them out as runs.
-const chunkBytes = 48 << 20
+const chunkBytes = 32 << 20
 
 // Do implements pipeline.Stage.
 func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
@@ -324,7 +324,7 @@ func isBlank(b []byte) bool {
 func (in *ingester) add(ctx context.Context, f *schemas.Frame) error {
 	in.chunk = append(in.chunk, schemas.Frame{})
 	in.chunk[len(in.chunk)-1].CopyFrom(f)
-	in.chunkSize += 160 + 8*(len(f.Obs)+len(f.Act)) + len(f.Unit) + len(f.Task)
+	in.chunkSize += frameOverhead + 8*(len(f.Obs)+len(f.Act)) + len(f.Task)
 	for _, b := range f.Img {
 		in.chunkSize += len(b)
 	}

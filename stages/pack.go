@@ -11,6 +11,7 @@ import (
 	"io"
 	"slices"
 	"sort"
+	"sync"
 
 	"github.com/parquet-go/parquet-go"
 	"github.com/parquet-go/parquet-go/compress"
@@ -25,14 +26,30 @@ import (
 
 // Pack writes a partition's episodes and goals as Parquet shards, one file
 // per (table, split) that has rows (SPEC §4), and the train split's stats.
-type Pack struct{}
+type Pack struct {
+	// codecs are shared by every shard of a run: a codec pools its encoders,
+	// and one zstd encoder holds megabytes of history, so a codec per file
+	// (a dozen columns each) would multiply memory by the number of files.
+	once   sync.Once
+	codecs map[string]compress.Codec
+}
+
+func (st *Pack) codec(name string) compress.Codec {
+	st.once.Do(func() {
+		st.codecs = map[string]compress.Codec{}
+		for _, n := range []string{"zstd", "snappy", "gzip", "none"} {
+			st.codecs[n] = Codec(n)
+		}
+	})
+	return st.codecs[name]
+}
 
 // Name implements pipeline.Stage.
-func (Pack) Name() string { return "pack" }
+func (*Pack) Name() string { return "pack" }
 
 // Reads implements pipeline.Stage. The footers carry the config's SHA-256,
 // so any config change re-packs.
-func (Pack) Reads(cfg *pipeline.Config) any {
+func (*Pack) Reads(cfg *pipeline.Config) any {
 	return map[string]any{"config_sha256": cfg.SHA256()}
 }
 
@@ -42,7 +59,7 @@ type packInput struct {
 }
 
 // Items implements pipeline.Stage: one item per partition.
-func (Pack) Items(ctx context.Context, env *pipeline.Env, ckey string, up map[string][]pipeline.Sealed) ([]pipeline.Item, error) {
+func (*Pack) Items(ctx context.Context, env *pipeline.Env, ckey string, up map[string][]pipeline.Sealed) ([]pipeline.Item, error) {
 	eps, goals := up["episodes"], up["goals"]
 	if len(eps) != len(goals) {
 		return nil, fmt.Errorf("pack: %d episode partitions but %d goal partitions", len(eps), len(goals))
@@ -223,7 +240,7 @@ func (p *typedPairs[F]) end() error {
 func (p *typedPairs[F]) Close() error { return p.w.Close() }
 
 // Do implements pipeline.Stage.
-func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
+func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any, error) {
 	in := it.Meta.(packInput)
 	cfg := env.Config
 	part := in.Episodes.Partition
@@ -247,7 +264,7 @@ func (st Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (any
 	shards := map[[2]string]*shard{} // (table, split)
 	options := func(table, split string) []parquet.WriterOption {
 		return []parquet.WriterOption{
-			parquet.Compression(Codec(cfg.Parquet.Compression)),
+			parquet.Compression(st.codec(cfg.Parquet.Compression)),
 			parquet.MaxRowsPerRowGroup(int64(cfg.Parquet.RowGroupRows)),
 			parquet.CreatedBy("hindcast", pipeline.ToolVersion, ""),
 			parquet.KeyValueMetadata("dataset", cfg.Dataset),

@@ -7,5 +7,5 @@ import "hindcast/pipeline"
 
 // All returns the stages in run order.
 func All() []pipeline.Stage {
-	return []pipeline.Stage{Ingest{}, Episodes{}, Goals{}, Pack{}}
+	return []pipeline.Stage{Ingest{}, Episodes{}, Goals{}, &Pack{}}
 }
