@@ -203,9 +203,10 @@ func tinyPNG(t *testing.T, c color.RGBA) []byte {
 
 // writeFixture writes the fixture fleet under dir/logs: two embodiments, arm
 // with a wrist camera and cart with none; one arm unit with two episodes
-// (the second observation-only), two cart units, one object gzip-compressed;
-// blank lines, a CRLF line end and an unknown field along the way. Nothing
-// in it is dropped, so every line becomes a frame.
+// (the second observation-only), two cart units (one in the other partition),
+// one object gzip-compressed, one starting with a byte-order mark; blank lines, a
+// CRLF line end, unknown fields, nulls and an undeclared camera along the
+// way. Nothing in it is dropped, so every non-blank line becomes a frame.
 func writeFixture(t *testing.T, dir string) *fixture {
 	t.Helper()
 	fx := &fixture{logs: filepath.Join(dir, "logs"), episodes: map[string][]*inFrame{}, images: map[string][]byte{}}
@@ -245,6 +246,12 @@ func writeFixture(t *testing.T, dir string) *fixture {
 		kf := float64(k)
 		f := &inFrame{unit: "arm-01", emb: "arm", t: fixT0 + 10_000_000_000 + int64(k)*100_000_000,
 			obs: []float64{2 + 0.1*kf, -1 - 0.3*kf, 0.7 + 0.2*kf}, img: "img/w1.png"}
+		switch k { // SPEC §1: null in an optional field means absent
+		case 2:
+			f.extra = `,"task":null,"success":null`
+		case 3:
+			f.extra = `,"act":null`
+		}
 		epB = append(epB, f)
 		arm = append(arm, line{f: f})
 	}
@@ -253,7 +260,10 @@ func writeFixture(t *testing.T, dir string) *fixture {
 		kf := float64(k)
 		f := &inFrame{unit: "cart-07", emb: "cart", t: fixT0 + 1 + int64(k)*50_000_000,
 			obs: []float64{0.3 * kf, -0.1*kf - 0.05}, act: []float64{0.25 - 0.125*kf}}
-		if k == 5 {
+		switch k {
+		case 3: // SPEC §1: a camera the embodiment does not declare is ignored
+			f.extra = `,"img":{"rear":"img/none.png"}`
+		case 5:
 			f.success = &no
 		}
 		epC = append(epC, f)
@@ -267,8 +277,11 @@ func writeFixture(t *testing.T, dir string) *fixture {
 		cart5 = append(cart5, line{f: f})
 	}
 
-	write := func(key string, lines []line, gz bool) {
+	write := func(key string, lines []line, gz, bom bool) {
 		var text bytes.Buffer
+		if bom { // SPEC §1: a UTF-8 byte-order mark at the start is ignored
+			text.WriteString("\uFEFF")
+		}
 		for i, l := range lines {
 			if l.f != nil {
 				l.f.src, l.f.line = key, int64(i+1)
@@ -296,9 +309,9 @@ func writeFixture(t *testing.T, dir string) *fixture {
 		}
 		writeFile(t, filepath.Join(fx.logs, filepath.FromSlash(key)), data)
 	}
-	write("arm/arm-01.jsonl", arm, false)
-	write("cart/cart-07.jsonl.gz", cart7, true)
-	write("cart/cart-05.jsonl", cart5, false)
+	write("arm/arm-01.jsonl", arm, false, false)
+	write("cart/cart-07.jsonl.gz", cart7, true, false)
+	write("cart/cart-05.jsonl", cart5, false, true)
 	for key, b := range fx.images {
 		writeFile(t, filepath.Join(fx.logs, filepath.FromSlash(key)), b)
 	}
@@ -839,6 +852,42 @@ func checkShards(t *testing.T, float string) {
 			pairsSeen += checkPairs(t, p, pf, fx, wantFrames[fk], negPool, float)
 		}
 	}
+	// SPEC §5 stats: every declared embodiment, over the train frames only
+	// (an embodiment with none has count 0), recomputed from the inputs.
+	trainObs, trainAct := map[string][][]float64{}, map[string][][]float64{}
+	for _, id := range ids {
+		if epShard[id].split != "train" {
+			continue
+		}
+		for _, f := range fx.episodes[id] {
+			trainObs[f.emb] = append(trainObs[f.emb], rounded(f.obs, float))
+			if f.act != nil {
+				trainAct[f.emb] = append(trainAct[f.emb], rounded(f.act, float))
+			}
+		}
+	}
+	if got := slices.Sorted(mapKeys(m.Stats)); !slices.Equal(got, []string{"arm", "cart"}) {
+		t.Errorf("stats for %v, want arm and cart", got)
+	}
+	for _, emb := range []string{"arm", "cart"} {
+		for _, c := range []struct {
+			what string
+			xs   [][]float64
+			got  vecStats
+		}{{"obs", trainObs[emb], m.Stats[emb].Obs}, {"act", trainAct[emb], m.Stats[emb].Act}} {
+			if len(c.xs) == 0 {
+				if c.got.Count != 0 || len(c.got.Mean)+len(c.got.Std)+len(c.got.Min)+len(c.got.Max) != 0 {
+					t.Errorf("%s %s: no train frames, stats %+v", emb, c.what, c.got)
+				}
+				continue
+			}
+			compareStats(t, emb+" "+c.what, c.xs, c.got)
+		}
+	}
+	if len(trainObs) == 0 || len(trainObs) == 2 {
+		t.Errorf("fixture meant to have train frames of one embodiment only, has %d", len(trainObs))
+	}
+
 	if framesSeen != len(fx.frames) {
 		t.Errorf("%d frame rows in all shards, want %d (every fixture line)", framesSeen, len(fx.frames))
 	}
@@ -1131,7 +1180,7 @@ var allReasons = []string{"oversize", "truncated", "malformed", "unknown_embodim
 
 func TestDemo(t *testing.T) {
 	dir := t.TempDir()
-	out := mustRun(t, "demo", "--dir", dir, "--parallel", "2")
+	out := mustRun(t, "demo", "--dir", dir)
 
 	// The demo promises every fault class: each reason is in the summary
 	// with a non-zero count.
