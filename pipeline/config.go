@@ -24,6 +24,7 @@ type Config struct {
 	SplitBy     string                 `yaml:"split_by" json:"split_by"`
 	Float       string                 `yaml:"float" json:"float"`
 	Parquet     ParquetConfig          `yaml:"parquet" json:"parquet"`
+	Storage     StorageConfig          `yaml:"storage" json:"storage"`
 
 	// Dir is the folder of the config file; plain paths are relative to it.
 	Dir string `yaml:"-" json:"-"`
@@ -81,6 +82,29 @@ type SplitConfig struct {
 type ParquetConfig struct {
 	Compression  string `yaml:"compression" json:"compression"`
 	RowGroupRows int    `yaml:"row_group_rows" json:"row_group_rows"`
+}
+
+// StorageConfig holds the object-store connection settings. They decide
+// where and how bytes move, never what they are, so config_sha256 leaves
+// them out. Credentials are never here: they come from the standard AWS
+// chain (environment, shared config and profile, web identity).
+type StorageConfig struct {
+	// Endpoint of an S3-compatible store; empty means the SDK's own
+	// resolution (AWS_ENDPOINT_URL_S3, AWS_ENDPOINT_URL, or AWS itself).
+	Endpoint string `yaml:"endpoint" json:"endpoint,omitempty"`
+	// PathStyle forces path-style addressing; nil means "true with a custom
+	// endpoint, else virtual-hosted".
+	PathStyle *bool `yaml:"path_style" json:"path_style,omitempty"`
+	// Region; empty means the SDK's chain, else us-east-1.
+	Region string `yaml:"region" json:"region,omitempty"`
+	// MaxConcurrency bounds concurrent requests of one upload (its parts).
+	MaxConcurrency int `yaml:"max_concurrency" json:"max_concurrency"`
+	// PartSize is the multipart part size in bytes; smaller objects go in one PUT.
+	PartSize int64 `yaml:"part_size" json:"part_size"`
+	// Attempts is the most tries of one request (1 = no retry).
+	Attempts int `yaml:"attempts" json:"attempts"`
+	// Timeout bounds one request without progress.
+	Timeout Duration `yaml:"timeout" json:"timeout"`
 }
 
 // Duration is a time.Duration written as Go duration text ("500ms") in YAML

@@ -59,13 +59,14 @@ func defaultInclude() []string {
 // key, and a test checks that the JSON Schema lists exactly these.
 func configKeys() map[string][]string {
 	return map[string][]string{
-		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet"},
+		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet", "storage"},
 		"source":        {"uri", "include", "exclude", "max_line_bytes"},
 		"embodiments.*": {"obs", "act", "obs_low", "obs_high", "act_low", "act_high", "cameras", "goal_dims", "goal_tolerance"},
 		"episodes":      {"max_gap", "min_steps", "max_steps"},
 		"goals":         {"future", "geometric", "final", "negative", "gamma", "horizon"},
 		"splits":        {"train", "val", "test"},
 		"parquet":       {"compression", "row_group_rows"},
+		"storage":       {"endpoint", "path_style", "region", "max_concurrency", "part_size", "attempts", "timeout"},
 	}
 }
 
@@ -382,6 +383,7 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 		SplitBy:     "episode",
 		Float:       "float32",
 		Parquet:     ParquetConfig{Compression: "zstd", RowGroupRows: defaultRowGroupRows},
+		Storage:     StorageConfig{MaxConcurrency: 8, PartSize: 16 << 20, Attempts: 6, Timeout: Duration(60 * time.Second)},
 	}
 	keys := configKeys()
 	fs := l.fields("", doc.Line, doc, keys[""])
@@ -459,7 +461,69 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 			c.Parquet.RowGroupRows = int(v)
 		}
 	}
+	if f, ok := fs["storage"]; ok {
+		l.storage(f, keys["storage"], &c.Storage)
+	}
 	return c
+}
+
+// storage reads the object-store connection settings.
+func (l *configLoader) storage(f cfgField, allowed []string, s *StorageConfig) {
+	fs := l.fields(f.key, f.line, f.val, allowed)
+	if fs == nil {
+		return
+	}
+	if g, ok := fs["endpoint"]; ok {
+		const want = "an http:// or https:// URL"
+		if v, ok := l.str(g, want); ok {
+			u, err := url.Parse(v)
+			if err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" || u.User != nil {
+				l.fail(g.key, g.line, "must be %s without credentials, got %s", want, describeNode(g.val))
+			} else {
+				s.Endpoint = v
+			}
+		}
+	}
+	if g, ok := fs["path_style"]; ok {
+		if g.val.Kind != yaml.ScalarNode || g.val.ShortTag() != "!!bool" {
+			l.fail(g.key, g.line, "must be true or false, got %s", describeNode(g.val))
+		} else {
+			b := g.val.Value == "true"
+			s.PathStyle = &b
+		}
+	}
+	if g, ok := fs["region"]; ok {
+		if v, ok := l.str(g, "a region name such as us-east-1"); ok {
+			if v == "" {
+				l.fail(g.key, g.line, "must not be empty")
+			}
+			s.Region = v
+		}
+	}
+	if g, ok := fs["max_concurrency"]; ok {
+		v, _ := l.integer(g, 1, 1024)
+		s.MaxConcurrency = int(v)
+	}
+	if g, ok := fs["part_size"]; ok {
+		// S3 parts are at least 5 MiB (except the last) and at most 5 GiB.
+		v, _ := l.integer(g, 5<<20, 5<<30)
+		s.PartSize = v
+	}
+	if g, ok := fs["attempts"]; ok {
+		v, _ := l.integer(g, 1, 100)
+		s.Attempts = int(v)
+	}
+	if g, ok := fs["timeout"]; ok {
+		const want = "a Go duration > 0 such as 30s"
+		if v, ok := l.str(g, want); ok {
+			d, err := time.ParseDuration(v)
+			if err != nil || d <= 0 {
+				l.fail(g.key, g.line, "must be %s, got %s", want, describeNode(g.val))
+			} else {
+				s.Timeout = Duration(d)
+			}
+		}
+	}
 }
 
 func (l *configLoader) source(f cfgField, allowed []string, s *SourceConfig) {

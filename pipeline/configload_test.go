@@ -173,6 +173,7 @@ func TestAislePickersConfig(t *testing.T) {
 		SplitBy:     "unit",
 		Float:       "float32",
 		Parquet:     ParquetConfig{Compression: "zstd", RowGroupRows: 65536},
+		Storage:     StorageConfig{MaxConcurrency: 8, PartSize: 16 << 20, Attempts: 6, Timeout: Duration(time.Minute)},
 		Dir:         filepath.Join(repo, "configs"),
 		Path:        "../configs/aisle-pickers.yaml",
 	}
@@ -238,6 +239,7 @@ func TestMinimalConfigDefaults(t *testing.T) {
 		SplitBy:  "episode",
 		Float:    "float32",
 		Parquet:  ParquetConfig{Compression: "zstd", RowGroupRows: 65536},
+		Storage:  StorageConfig{MaxConcurrency: 8, PartSize: 16 << 20, Attempts: 6, Timeout: Duration(time.Minute)},
 		Dir:      dir,
 		Path:     "fleet.yaml",
 	}
@@ -325,7 +327,7 @@ const (
 )
 
 func TestBadConfigs(t *testing.T) {
-	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet"
+	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet, storage"
 	const embKeys = "obs, act, obs_low, obs_high, act_low, act_high, cameras, goal_dims, goal_tolerance"
 	const locations = "s3://bucket/prefix, file:///abs/dir or a plain path"
 	const obsBound = "must be a finite number or a list of 10 finite numbers (one per obs dim)"
@@ -338,8 +340,12 @@ func TestBadConfigs(t *testing.T) {
 		msg    string
 		schema schemaVerdict
 	}{
-		{"storage not accepted yet", baseConfig + "storage:\n  endpoint: http://127.0.0.1:9000\n",
-			"storage", 10, "unknown key (allowed: " + topKeys + ")", schemaRejects},
+		{"unknown key in storage", baseConfig + "storage:\n  endpoint: http://127.0.0.1:9000\n  secret: x\n",
+			"storage.secret", 12, "unknown key (allowed: endpoint, path_style, region, max_concurrency, part_size, attempts, timeout)", schemaRejects},
+		{"storage part size under the S3 minimum", baseConfig + "storage:\n  part_size: 1048576\n",
+			"storage.part_size", 11, "must be an integer from 5242880 to 5368709120, got 1048576", schemaRejects},
+		{"storage path_style not a bool", baseConfig + "storage:\n  path_style: yes please\n",
+			"storage.path_style", 11, "must be true or false, got \"yes please\"", schemaRejects},
 		{"unknown key in embodiment", editBase(t, "    act: 7\n", "    act: 7\n    obs_lo: -1\n"),
 			"embodiments.picker6.obs_lo", 8, "unknown key (allowed: " + embKeys + ")", schemaRejects},
 		{"unknown key in source", editBase(t, "  uri: logs\n", "  uri: logs\n  inclde: [\"*.jsonl\"]\n"),
@@ -611,7 +617,8 @@ func TestCanonicalJSON(t *testing.T) {
 		`"goals":{"final":1,"future":2,"gamma":0.99,"geometric":1,"horizon":0,"negative":0},` +
 		`"output":"file:///etc/hindcast/datasets/","parquet":{"compression":"zstd","row_group_rows":65536},"partitions":8,"seed":0,` +
 		`"source":{"exclude":[],"include":["**/*.jsonl","**/*.jsonl.gz","**/*.jsonl.zst"],"max_line_bytes":1048576,"uri":"file:///etc/hindcast/logs/"},` +
-		`"split_by":"episode","splits":{"test":0.1,"train":0.8,"val":0.1},"work":"file:///etc/hindcast/.hindcast/work/"}`
+		`"split_by":"episode","splits":{"test":0.1,"train":0.8,"val":0.1},` +
+		`"storage":{"attempts":6,"max_concurrency":8,"part_size":16777216,"timeout":"1m0s"},"work":"file:///etc/hindcast/.hindcast/work/"}`
 	if got := string(c.CanonicalJSON()); got != want {
 		t.Errorf("CanonicalJSON() =\n%s\nwant\n%s", got, want)
 	}
@@ -760,6 +767,7 @@ func TestSchemaMatchesLoader(t *testing.T) {
 		"goals":         props(top["goals"]),
 		"splits":        props(top["splits"]),
 		"parquet":       props(top["parquet"]),
+		"storage":       props(top["storage"]),
 	}
 	keys := configKeys()
 	if len(keys) != len(sections) {
@@ -818,8 +826,10 @@ func TestSchemaMatchesLoader(t *testing.T) {
 			}
 		}
 	}
-	if checked != 23 {
-		t.Errorf("checked %d schema defaults, want 23", checked)
+	// 23 defaults of SPEC §2's keys, and 4 of the storage section
+	// (max_concurrency, part_size, attempts, timeout).
+	if checked != 27 {
+		t.Errorf("checked %d schema defaults, want 27", checked)
 	}
 }
 

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"net/url"
 	"path"
 	"strings"
 
@@ -180,6 +181,16 @@ func (fe *imageFetcher) fetch(ctx context.Context, ref string) ([]byte, error) {
 		j := strings.LastIndex(ref, "/")
 		root := ref[:j+1]
 		key = ref[j+1:]
+		if strings.HasPrefix(ref, "file://") {
+			// A file URI is percent-encoded (RFC 8089, RFC 3986 §2.1); the
+			// folder part is decoded when its store opens, the name here.
+			// S3 keys are taken as written.
+			k, err := url.PathUnescape(key)
+			if err != nil {
+				return nil, errBadRef
+			}
+			key = k
+		}
 		if fe.stores == nil {
 			fe.stores = map[string]pipeline.Store{}
 		}

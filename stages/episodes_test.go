@@ -406,27 +406,30 @@ func TestEpisodesPipelineChunks(t *testing.T) {
 
 // TestEpisodesPipelineSameTime: two objects with the same unit and times.
 // "x-1.jsonl" sorts before "x/1.jsonl" ('-' < '/'), so its frames are kept
-// and the other's are dropped and charged to x/1.jsonl. The obs 0.1 and
-// 0.1000000001 are one float32 but two float64 values, so with float32 the
+// and the other's are dropped and charged to x/1.jsonl. The obs 0.5 and
+// 0.5000000001 are one float32 but two float64 values, so with float32 the
 // pair is a duplicate and with float64 a conflict (SPEC §3.2: numbers compare
-// after conversion to the output float type).
+// after conversion to the output float type); 1 and 1.0, 0.5 and 5e-1 are
+// the same number in either type.
 func TestEpisodesPipelineSameTime(t *testing.T) {
-	if float32(0.1) != float32(0.1000000001) || 0.1 == 0.1000000001 {
-		t.Fatalf("test premise: 0.1 and 0.1000000001 must be one float32 and two float64")
-	}
 	ms := int64(time.Millisecond)
 	first := jsonLines(
 		armLine("dd", 1*ms, ""),
 		armLine("dd", 2*ms, ""),
 		armLine("dd", 3*ms, `,"task":"pick"`),
 		armLine("dd", 4*ms, ""),
+		strings.Replace(armLine("dd", 6*ms, ""), "[0.5,0.5,0.5]", "[1,0.5,0.5]", 1),
 	)
 	second := jsonLines(
 		armLine("dd", 1*ms, ""), // identical: duplicate
 		strings.Replace(armLine("dd", 2*ms, ""), "[0.5,0.5,0.5]", "[0.5000000001,0.5,0.5]", 1),
 		armLine("dd", 3*ms, `,"task":"place"`), // conflict
 		armLine("dd", 5*ms, ""),                // kept
+		// The same numbers written differently (RFC 8259 §6): duplicate.
+		strings.Replace(armLine("dd", 6*ms, ""), "[0.5,0.5,0.5]", "[1.0,5e-1,0.50]", 1),
 	)
+	// float32 has a spacing of 2^-24 ≈ 6e-8 just above 0.5 (IEEE 754
+	// binary32, 24-bit significand), so 0.5 + 1e-10 rounds back to 0.5.
 	if float32(0.5) != float32(0.5000000001) || 0.5 == 0.5000000001 {
 		t.Fatalf("test premise: 0.5 and 0.5000000001 must be one float32 and two float64")
 	}
@@ -434,17 +437,17 @@ func TestEpisodesPipelineSameTime(t *testing.T) {
 	for _, c := range []struct {
 		float     string
 		dup, conf int64
-	}{{"float32", 2, 1}, {"float64", 1, 2}} {
+	}{{"float32", 3, 1}, {"float64", 2, 2}} {
 		t.Run(c.float, func(t *testing.T) {
 			r := runPipelineAt(t, episodesConfig("1h", 2, 500, "float: "+c.float+"\n"), files)
 			srcs := []srcWant{
-				{"x-1.jsonl", 4, 4, nil},
-				{"x/1.jsonl", 4, 1, map[string]int64{pipeline.Duplicate: c.dup, pipeline.Conflict: c.conf}},
+				{"x-1.jsonl", 5, 5, nil},
+				{"x/1.jsonl", 5, 1, map[string]int64{pipeline.Duplicate: c.dup, pipeline.Conflict: c.conf}},
 			}
 			for _, s := range srcs {
 				wantSource(t, r.Manifest, s.key, s.lines, s.kept, s.dropped)
 			}
-			wantFunnel(t, r.Manifest, funnelOf(2, 0, srcs, 5, 1, 4))
+			wantFunnel(t, r.Manifest, funnelOf(2, 0, srcs, 6, 1, 5))
 			var got []string
 			if c.float == "float32" {
 				got = episodeIndex(t, readShardFrames[float32](t, r))[fmt.Sprintf("dd-%d", ms)]
@@ -453,7 +456,7 @@ func TestEpisodesPipelineSameTime(t *testing.T) {
 			}
 			want := []string{
 				fmt.Sprintf("%d@x-1.jsonl:1", 1*ms), fmt.Sprintf("%d@x-1.jsonl:2", 2*ms), fmt.Sprintf("%d@x-1.jsonl:3", 3*ms),
-				fmt.Sprintf("%d@x-1.jsonl:4", 4*ms), fmt.Sprintf("%d@x/1.jsonl:4", 5*ms),
+				fmt.Sprintf("%d@x-1.jsonl:4", 4*ms), fmt.Sprintf("%d@x/1.jsonl:4", 5*ms), fmt.Sprintf("%d@x-1.jsonl:5", 6*ms),
 			}
 			if !slices.Equal(got, want) {
 				t.Errorf("episode dd-%d: %v, want %v", ms, got, want)

@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"compress/gzip"
 	"context"
-	"encoding/json"
 	"maps"
 	"os"
 	"path/filepath"
@@ -233,16 +232,6 @@ func zstdBytes(t *testing.T, b []byte) []byte {
 	}
 	defer enc.Close()
 	return enc.EncodeAll(b, nil)
-}
-
-// mustJSON encodes v for building log lines in tests.
-func mustJSON(t *testing.T, v any) string {
-	t.Helper()
-	b, err := json.Marshal(v)
-	if err != nil {
-		t.Fatalf("encode %v: %v", v, err)
-	}
-	return string(b)
 }
 
 // shardFrame is one row of a committed frames table (SPEC §4), the columns

@@ -214,7 +214,13 @@ func (in *ingester) drop(reason string) { in.sum.Dropped[reason]++ }
 func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader) error {
 	cfg := in.env.Config
 	maxLen := cfg.Source.MaxLineBytes
-	lr := newLineReader(body, maxLen)
+	// A byte-order mark starts the object, not its first line: drop it
+	// before lines are measured (SPEC §1).
+	br := bufio.NewReaderSize(body, 64<<10)
+	if bom, _ := br.Peek(3); bytes.Equal(bom, []byte("\xef\xbb\xbf")) {
+		br.Discard(3)
+	}
+	lr := newLineReader(br, maxLen)
 	var parsed jsonl.Line
 	fe := &imageFetcher{env: in.env}
 	c := &lineCtx{line: &parsed, cfg: cfg, f32: cfg.Float == "float32", fetch: fe.fetch, lastT: map[string]int64{}}
@@ -236,9 +242,6 @@ func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader
 			break
 		}
 		lineNo++
-		if lineNo == 1 {
-			line = bytes.TrimPrefix(line, []byte("\xef\xbb\xbf"))
-		}
 		if !oversize && isBlank(line) {
 			if broken {
 				in.sum.Incomplete = true
@@ -415,7 +418,11 @@ type lineReader struct {
 }
 
 func newLineReader(r io.Reader, maxLen int) *lineReader {
-	return &lineReader{br: bufio.NewReaderSize(r, 64<<10), maxLen: maxLen}
+	br, ok := r.(*bufio.Reader)
+	if !ok {
+		br = bufio.NewReaderSize(r, 64<<10)
+	}
+	return &lineReader{br: br, maxLen: maxLen}
 }
 
 // next returns the next line without its line end ("\n", or "\r\n"), whether
