@@ -200,13 +200,20 @@ func runConfig(ctx context.Context, path, version string, parallel int, stdout i
 		}
 	}
 	ui.log.Info("run", "config", path, "dataset", cfg.Dataset, "source", cfg.Source.URI, "parallel", parallel)
+	metrics := &pipeline.Metrics{}
 	m, err := pipeline.Execute(ctx, cfg, stages.All(), pipeline.Options{
-		Version: version, Parallel: parallel, Log: ui.log, Progress: ui.progress(), Tool: toolInfo(),
+		Version: version, Parallel: parallel, Log: ui.log, Progress: ui.progress(), Tool: toolInfo(), Metrics: metrics,
+		Code: pipeline.CodeID(),
 	})
+	if r := metrics.Retries.Load(); err != nil && r > 0 {
+		fmt.Fprintf(ui.w, "storage: %d requests retried before the failure\n", r)
+	}
 	if err != nil {
 		return nil, err
 	}
 	printSummary(stdout, m, pipeline.JoinURI(cfg.Output, pipeline.VersionPrefix(m.Dataset, m.Version)))
+	fmt.Fprintf(stdout, "storage   %d requests, %d retries, %.1f MB read, %.1f MB written\n",
+		metrics.Requests.Load(), metrics.Retries.Load(), float64(metrics.BytesRead.Load())/1e6, float64(metrics.BytesWritten.Load())/1e6)
 	return m, nil
 }
 

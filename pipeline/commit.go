@@ -77,7 +77,7 @@ type Linker interface {
 // publish copies one shard, checking on the way that its bytes are still
 // the ones pack recorded.
 func publish(ctx context.Context, work Store, from string, out Store, to, sha string) error {
-	if l, ok := out.(Linker); ok {
+	if l, ok := Unwrap(out).(Linker); ok {
 		if err := l.Link(ctx, work, from, to); err == nil {
 			return nil
 		}

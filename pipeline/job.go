@@ -17,6 +17,12 @@ type Options struct {
 	Progress Progress
 	Tool     ToolInfo
 	Now      func() time.Time
+	// Code identifies the build in stage keys (see CodeID); empty means
+	// ToolVersion alone, which tests use.
+	Code string
+	// Metrics receives the stores' counts (requests, retries, bytes); nil
+	// means a fresh set, not reported.
+	Metrics *Metrics
 }
 
 // Execute runs every stage over the config's source and commits the version.
@@ -34,19 +40,23 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	if err := ValidVersion(opt.Version); err != nil {
 		return nil, err
 	}
-	src, err := OpenStore(ctx, cfg.Source.URI)
+	if opt.Metrics == nil {
+		opt.Metrics = &Metrics{}
+	}
+	opener := &Opener{Storage: cfg.Storage, Metrics: opt.Metrics}
+	src, err := opener.Open(ctx, cfg.Source.URI)
 	if err != nil {
 		return nil, err
 	}
-	work, err := OpenStore(ctx, cfg.Work)
+	work, err := opener.Open(ctx, cfg.Work)
 	if err != nil {
 		return nil, err
 	}
-	out, err := OpenStore(ctx, cfg.Output)
+	out, err := opener.Open(ctx, cfg.Output)
 	if err != nil {
 		return nil, err
 	}
-	if ls, ok := out.(*LocalStore); ok {
+	if ls, ok := Unwrap(out).(*LocalStore); ok {
 		ls.Durable = true
 	}
 	// Refuse an existing version before doing any work.
@@ -56,7 +66,7 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	} else if !errors.Is(err, ErrNotFound) {
 		return nil, err
 	}
-	env := &Env{Config: cfg, Source: src, Work: work, Parallel: opt.Parallel, Log: opt.Log, Progress: opt.Progress}
+	env := &Env{Config: cfg, Source: src, Work: work, Parallel: opt.Parallel, Log: opt.Log, Progress: opt.Progress, Resolve: opener.Open, Code: opt.Code}
 	res, err := RunStages(ctx, env, stages)
 	if err != nil {
 		return nil, err
@@ -68,5 +78,7 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	if err := Commit(ctx, work, out, m, res); err != nil {
 		return nil, err
 	}
+	opt.Log.Info("storage", "requests", opt.Metrics.Requests.Load(), "retries", opt.Metrics.Retries.Load(),
+		"bytes_read", opt.Metrics.BytesRead.Load(), "bytes_written", opt.Metrics.BytesWritten.Load())
 	return m, nil
 }

@@ -7,7 +7,9 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"log/slog"
+	"os"
 	"runtime/debug"
 	"sort"
 	"sync/atomic"
@@ -33,6 +35,44 @@ type Env struct {
 	// Resolve opens the store of an absolute URI (images referenced by
 	// file:// or s3:// URIs). Nil means OpenStore.
 	Resolve func(ctx context.Context, uri string) (Store, error)
+	// Code identifies the build beyond ToolVersion (see CodeID); it is part
+	// of every stage key, so a rebuilt binary never trusts what an older
+	// build wrote.
+	Code string
+}
+
+// CodeID identifies the running build: the VCS revision when the binary
+// was built from a clean checkout, else the SHA-256 of the executable. Every
+// worker of a cluster runs the same image and so agrees on it.
+func CodeID() string {
+	if bi, ok := debug.ReadBuildInfo(); ok {
+		rev, dirty := "", true
+		for _, s := range bi.Settings {
+			switch s.Key {
+			case "vcs.revision":
+				rev = s.Value
+			case "vcs.modified":
+				dirty = s.Value == "true"
+			}
+		}
+		if rev != "" && !dirty {
+			return "rev:" + rev
+		}
+	}
+	exe, err := os.Executable()
+	if err != nil {
+		return "unknown"
+	}
+	f, err := os.Open(exe)
+	if err != nil {
+		return "unknown"
+	}
+	defer f.Close()
+	h := sha256.New()
+	if _, err := io.Copy(h, f); err != nil {
+		return "unknown"
+	}
+	return "exe:" + hex.EncodeToString(h.Sum(nil))
 }
 
 // Progress receives counts while a stage runs; the CLI draws them as a live
@@ -118,8 +158,8 @@ func HashParts(parts ...any) string {
 }
 
 // ConfigKey is the part of a stage's key that its config and code give.
-func ConfigKey(st Stage, cfg *Config) string {
-	return HashParts("hindcast-stage", st.Name(), ToolVersion, st.Reads(cfg))
+func ConfigKey(st Stage, cfg *Config, code string) string {
+	return HashParts("hindcast-stage", st.Name(), ToolVersion, code, st.Reads(cfg))
 }
 
 // Result is the outcome of running the stages: per stage, its record and its
@@ -135,7 +175,7 @@ func RunStages(ctx context.Context, env *Env, stages []Stage) (*Result, error) {
 	res := &Result{Sealed: map[string][]Sealed{}}
 	for _, st := range stages {
 		start := time.Now()
-		ckey := ConfigKey(st, env.Config)
+		ckey := ConfigKey(st, env.Config, env.Code)
 		items, err := st.Items(ctx, env, ckey, res.Sealed)
 		if err != nil {
 			return nil, fmt.Errorf("%s: plan: %w", st.Name(), err)

@@ -95,21 +95,54 @@ func JoinURI(root, key string) string {
 	return strings.TrimSuffix(root, "/") + "/" + key
 }
 
-// OpenStore returns the Store for a resolved URI (file:// or a plain absolute path).
+// OpenStore returns the Store for a resolved URI (file://, s3:// or a plain
+// absolute path) with default connection settings.
 func OpenStore(ctx context.Context, uri string) (Store, error) {
+	return (&Opener{}).Open(ctx, uri)
+}
+
+// Opener opens the stores of one run: every store shares the run's
+// connection settings and metrics, and is wrapped in the Metered decorator.
+type Opener struct {
+	Storage StorageConfig
+	Metrics *Metrics
+}
+
+// Open returns the Store rooted at uri.
+func (o *Opener) Open(ctx context.Context, uri string) (Store, error) {
+	m := o.Metrics
+	if m == nil {
+		m = &Metrics{}
+	}
 	switch {
 	case strings.HasPrefix(uri, "file://"):
 		u, err := url.Parse(uri)
 		if err != nil {
 			return nil, fmt.Errorf("open store %s: %w", uri, err)
 		}
-		return NewLocalStore(u.Path), nil
+		return Metered{Store: NewLocalStore(u.Path), M: m}, nil
 	case strings.HasPrefix(uri, "s3://"):
-		return nil, fmt.Errorf("open store %s: S3 storage is not available in this build", uri)
+		s, err := NewS3Store(ctx, uri, o.Storage, m)
+		if err != nil {
+			return nil, err
+		}
+		return Metered{Store: s, M: m}, nil
 	case filepath.IsAbs(uri):
-		return NewLocalStore(uri), nil
+		return Metered{Store: NewLocalStore(uri), M: m}, nil
 	}
 	return nil, fmt.Errorf("open store %s: unsupported location (want file://, s3:// or an absolute path)", uri)
+}
+
+// Unwrap strips decorators (anything with an Unwrap method) off a Store, to
+// reach the backend's own optional interfaces such as Linker.
+func Unwrap(s Store) Store {
+	for {
+		u, ok := s.(interface{ Unwrap() Store })
+		if !ok {
+			return s
+		}
+		s = u.Unwrap()
+	}
 }
 
 // LocalStore is a Store on a local folder. Writes go to a temporary file in
@@ -275,7 +308,7 @@ func DeletePrefix(ctx context.Context, s Store, prefix string) error {
 // Link implements Linker: a hard link publishes a local file without
 // copying it; it fails (and the caller copies) across file systems.
 func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) error {
-	src, ok := from.(*LocalStore)
+	src, ok := Unwrap(from).(*LocalStore)
 	if !ok {
 		return fmt.Errorf("link %s: not a local store", JoinURI(from.URI(), fromKey))
 	}

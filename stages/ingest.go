@@ -151,6 +151,9 @@ func (in *ingester) run(ctx context.Context) error {
 		return err
 	}
 	defer rc.Close()
+	if v, ok := rc.(interface{ VersionID() string }); ok && v.VersionID() != "" {
+		in.sum.Version = v.VersionID()
+	}
 	src := &sourceReader{r: rc, h: sha256.New()}
 	if in.env.Progress != nil {
 		src.prog = func(n int64) { in.env.Progress.Advance("ingest", 0, n) }
