@@ -10,6 +10,7 @@ import (
 	"path/filepath"
 	"sort"
 	"strconv"
+	"strings"
 	"syscall"
 	"time"
 
@@ -123,8 +124,14 @@ func benchCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) err
 	if err != nil {
 		return err
 	}
-	var ours, peers []time.Duration
-	var rss, peerRSS int64
+	var s3Cfg string
+	if c.Endpoint != "" {
+		if s3Cfg, err = prepareS3Bench(ctx, dir, logs, c.Endpoint, c.Bucket, stdout); err != nil {
+			return err
+		}
+	}
+	var ours, peers, fromS3 []time.Duration
+	var rss, peerRSS, s3RSS int64
 	var last *pipeline.Manifest
 	for i := range c.Runs {
 		for _, sub := range []string{"work", "datasets", "peer-out"} {
@@ -146,6 +153,18 @@ func benchCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) err
 			return err
 		}
 		fmt.Fprintf(stdout, "run %d: hindcast %.2fs, peak RSS %.0f MiB\n", i+1, t.wall.Seconds(), float64(t.maxRSS)/(1<<20))
+		if s3Cfg != "" {
+			for _, sub := range []string{"work", "datasets"} {
+				os.RemoveAll(filepath.Join(dir, sub))
+			}
+			st, err := timeChild(ctx, ui.w, self, "run", "--config", s3Cfg, "--version", version, "--parallel", strconv.Itoa(c.Parallel))
+			if err != nil {
+				return err
+			}
+			fromS3 = append(fromS3, st.wall)
+			s3RSS = max(s3RSS, st.maxRSS)
+			fmt.Fprintf(stdout, "run %d: hindcast from S3 %.2fs, peak RSS %.0f MiB\n", i+1, st.wall.Seconds(), float64(st.maxRSS)/(1<<20))
+		}
 		if c.Peer != "" {
 			out := filepath.Join(dir, "peer-out")
 			if err := os.MkdirAll(out, 0o755); err != nil {
@@ -170,6 +189,11 @@ func benchCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) err
 	for _, s := range last.Stages {
 		fmt.Fprintf(stdout, "  stage %-9s %.2fs (last run)\n", s.Name, s.Seconds)
 	}
+	if len(fromS3) > 0 {
+		sm := median(fromS3).Seconds()
+		fmt.Fprintf(stdout, "hindcast with the source on S3, median of %d runs: %.2fs, peak RSS %.0f MiB\n", len(fromS3), sm, float64(s3RSS)/(1<<20))
+		fmt.Fprintf(stdout, "ratio S3/local (medians): %.2fx\n", sm/med)
+	}
 	if len(peers) > 0 {
 		pm := median(peers).Seconds()
 		fmt.Fprintf(stdout, "peer, median of %d runs: %.2fs, peak RSS %.0f MiB\n", len(peers), pm, float64(peerRSS)/(1<<20))
@@ -192,4 +216,51 @@ func peerSQL(bin string) string {
 func fileExists(p string) bool {
 	_, err := os.Stat(p)
 	return err == nil
+}
+
+// prepareS3Bench uploads the benchmark fleet to s3://bucket/logs/ (once: an
+// object already there with the same size is kept) and writes a config that
+// reads it from there, with work and output local as in the local runs.
+func prepareS3Bench(ctx context.Context, dir, logs, endpoint, bucket string, stdout io.Writer) (string, error) {
+	opener := &pipeline.Opener{Storage: pipeline.StorageConfig{Endpoint: endpoint}}
+	dst, err := opener.Open(ctx, "s3://"+bucket+"/logs/")
+	if err != nil {
+		return "", err
+	}
+	src := pipeline.NewLocalStore(logs)
+	have := map[string]int64{}
+	if err := dst.List(ctx, "", func(o pipeline.ObjectInfo) error { have[o.Key] = o.Size; return nil }); err != nil {
+		return "", fmt.Errorf("list the benchmark bucket: %w", err)
+	}
+	start, sent := time.Now(), int64(0)
+	err = src.List(ctx, "", func(o pipeline.ObjectInfo) error {
+		if have[o.Key] == o.Size {
+			return nil
+		}
+		r, err := src.Open(ctx, o.Key, 0)
+		if err != nil {
+			return err
+		}
+		defer r.Close()
+		up, err := dst.Create(ctx, o.Key)
+		if err != nil {
+			return err
+		}
+		if _, err := io.Copy(up, r); err != nil {
+			up.Abort()
+			return err
+		}
+		sent += o.Size
+		return up.Commit(false)
+	})
+	if err != nil {
+		return "", fmt.Errorf("upload the benchmark fleet: %w", err)
+	}
+	if sent > 0 {
+		fmt.Fprintf(stdout, "uploaded %.1f MB to s3://%s/logs/ in %.1fs\n", float64(sent)/1e6, bucket, time.Since(start).Seconds())
+	}
+	cfg := strings.Replace(benchConfig, "source:\n  uri: logs\n", "source:\n  uri: s3://"+bucket+"/logs/\n", 1) +
+		"storage:\n  endpoint: " + endpoint + "\n"
+	path := filepath.Join(dir, "bench-s3.yaml")
+	return path, os.WriteFile(path, []byte(cfg), 0o644)
 }

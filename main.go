@@ -51,6 +51,8 @@ type Command struct {
 	Peer     string
 	Compress bool
 	Profile  string
+	Endpoint string
+	Bucket   string
 	Help     bool
 }
 
@@ -80,6 +82,8 @@ func commands() map[string]commandSpec {
 			fs.IntVar(&c.Runs, "runs", 3, "timed runs (the median is reported)")
 			fs.StringVar(&c.Peer, "peer", "", "peer job binary to time on the same files, alternating with hindcast")
 			fs.BoolVar(&c.Compress, "zst", false, "write the fleet as .jsonl.zst objects")
+			fs.StringVar(&c.Endpoint, "s3-endpoint", "", "also time runs reading the fleet from this S3-compatible endpoint (credentials from the AWS environment)")
+			fs.StringVar(&c.Bucket, "s3-bucket", "hindcast-bench", "bucket the fleet is uploaded to, under logs/, with --s3-endpoint")
 			parallel(fs, c)
 		}},
 	}
