@@ -4,6 +4,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"flag"
 	"fmt"
@@ -15,6 +16,9 @@ import (
 	"runtime"
 	"runtime/debug"
 	"runtime/pprof"
+	"slices"
+	"strconv"
+	"strings"
 	"syscall"
 
 	"github.com/mattn/go-isatty"
@@ -53,6 +57,10 @@ type Command struct {
 	Profile  string
 	Endpoint string
 	Bucket   string
+	Stage    string // for "stage": the stage to run
+	Worker   int    // for "stage": this worker's index, 0-based
+	Workers  int    // for "stage": how many workers share the stage
+	JSON     bool
 	Help     bool
 }
 
@@ -71,6 +79,34 @@ func commands() map[string]commandSpec {
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
 			fs.StringVar(&c.Profile, "cpuprofile", "", "write a CPU profile (runtime/pprof) to this file")
 			parallel(fs, c)
+		}},
+		"stage": {"run one worker's share of one stage (ingest, episodes, goals or pack)", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
+			fs.Func("worker", "this worker's share as I/N, I from 0 (default 0/1; I may come from $JOB_COMPLETION_INDEX with --workers N)", func(v string) error {
+				var i, n int
+				if _, err := fmt.Sscanf(v, "%d/%d", &i, &n); err != nil || n < 1 || i < 0 || i >= n {
+					return fmt.Errorf("want I/N with 0 <= I < N, got %q", v)
+				}
+				c.Worker, c.Workers = i, n
+				return nil
+			})
+			fs.Func("workers", "how many workers share the stage; this one's index is $JOB_COMPLETION_INDEX", func(v string) error {
+				var n int
+				if _, err := fmt.Sscanf(v, "%d", &n); err != nil || n < 1 {
+					return fmt.Errorf("want a count >= 1, got %q", v)
+				}
+				c.Workers, c.Worker = n, -1
+				return nil
+			})
+			parallel(fs, c)
+		}},
+		"commit": {"publish a version from the sealed outputs of every stage, manifest last", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
+			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
+		}},
+		"plan": {"show what a run would do (objects new and cached, partitions to recompute, bytes to read); writes nothing", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
+			fs.BoolVar(&c.JSON, "json", false, "print the plan as JSON")
 		}},
 		"demo": {"write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
@@ -93,6 +129,9 @@ const topUsage = `hindcast turns fleet logs into goal-conditioned training shard
 
 Usage:
   hindcast run --config FILE [--version V] [--parallel N]
+  hindcast stage NAME --config FILE [--worker I/N | --workers N]
+  hindcast commit --config FILE [--version V]
+  hindcast plan --config FILE [--json]
   hindcast demo [--dir DIR]
   hindcast bench [--frames N] [--runs K] [--peer BIN]
 
@@ -112,15 +151,19 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 	if !ok {
 		return nil, usageError{fmt.Errorf("unknown command %q", args[0])}
 	}
-	c := &Command{Name: args[0]}
+	c := &Command{Name: args[0], Workers: 1, Parallel: 1}
 	fs := flag.NewFlagSet("hindcast "+args[0], flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	spec.flags(fs, c)
+	rest := args[1:]
+	if c.Name == "stage" && len(rest) > 0 && !strings.HasPrefix(rest[0], "-") {
+		c.Stage, rest = rest[0], rest[1:]
+	}
 	fs.Usage = func() {
 		fmt.Fprintf(stderr, "hindcast %s: %s\n\nFlags:\n", args[0], spec.summary)
 		fs.PrintDefaults()
 	}
-	if err := fs.Parse(args[1:]); err != nil {
+	if err := fs.Parse(rest); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
 			c.Help = true
 			return c, nil
@@ -130,10 +173,18 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 	if fs.NArg() > 0 {
 		return nil, usageError{fmt.Errorf("%s: unexpected argument %q", c.Name, fs.Arg(0))}
 	}
-	if c.Name == "run" && c.Config == "" {
-		return nil, usageError{errors.New("run: --config is required")}
+	switch c.Name {
+	case "run", "stage", "commit", "plan":
+		if c.Config == "" {
+			return nil, usageError{fmt.Errorf("%s: --config is required", c.Name)}
+		}
 	}
-	if c.Parallel < 1 {
+	if c.Name == "stage" {
+		if !slices.Contains(stageNames(), c.Stage) {
+			return nil, usageError{fmt.Errorf("stage: want a stage name (%s) before the flags, got %q", strings.Join(stageNames(), ", "), c.Stage)}
+		}
+	}
+	if c.Parallel < 1 && c.Name != "commit" && c.Name != "plan" {
 		return nil, usageError{fmt.Errorf("%s: --parallel must be at least 1", c.Name)}
 	}
 	return c, nil
@@ -163,6 +214,12 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	switch c.Name {
 	case "run":
 		err = runCommand(ctx, c, stdout, ui)
+	case "stage":
+		err = stageCommand(ctx, c, stdout, ui)
+	case "commit":
+		err = commitCommand(ctx, c, stdout, ui)
+	case "plan":
+		err = planCommand(ctx, c, stdout, ui)
 	case "demo":
 		err = demoCommand(ctx, c, stdout, ui)
 	case "bench":
@@ -262,4 +319,100 @@ func newLogger(w io.Writer, tty bool) *slog.Logger {
 func isTTY(w io.Writer) bool {
 	f, ok := w.(*os.File)
 	return ok && (isatty.IsTerminal(f.Fd()) || isatty.IsCygwinTerminal(f.Fd()))
+}
+
+func stageNames() []string {
+	var names []string
+	for _, st := range stages.All() {
+		names = append(names, st.Name())
+	}
+	return names
+}
+
+// jobOptions are the settings every command passes to the pipeline.
+func jobOptions(c *Command, ui *ui, metrics *pipeline.Metrics) pipeline.Options {
+	return pipeline.Options{Version: c.Version, Parallel: c.Parallel, Log: ui.log, Progress: ui.progress(),
+		Tool: toolInfo(), Metrics: metrics, Code: pipeline.CodeID()}
+}
+
+func stageCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	cfg, err := pipeline.LoadConfig(c.Config)
+	if err != nil {
+		return err
+	}
+	worker := c.Worker
+	if worker < 0 {
+		idx := os.Getenv("JOB_COMPLETION_INDEX")
+		i, err := strconv.Atoi(idx)
+		if err != nil || i < 0 || i >= c.Workers {
+			return usageError{fmt.Errorf("stage: --workers %d needs JOB_COMPLETION_INDEX in 0…%d, got %q", c.Workers, c.Workers-1, idx)}
+		}
+		worker = i
+	}
+	metrics := &pipeline.Metrics{}
+	r, err := pipeline.RunWorker(ctx, cfg, stages.All(), c.Stage, worker, c.Workers, jobOptions(c, ui, metrics))
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "stage %s worker %d/%d: %d items, %d reused, %.2fs; storage %d requests, %d retries\n",
+		r.Name, worker, c.Workers, r.Items, r.Reused, r.Seconds, metrics.Requests.Load(), metrics.Retries.Load())
+	return nil
+}
+
+func commitCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	cfg, err := pipeline.LoadConfig(c.Config)
+	if err != nil {
+		return err
+	}
+	if c.Version != "" {
+		if err := pipeline.ValidVersion(c.Version); err != nil {
+			return usageError{err}
+		}
+	}
+	metrics := &pipeline.Metrics{}
+	m, err := pipeline.CommitVersion(ctx, cfg, stages.All(), jobOptions(c, ui, metrics))
+	if err != nil {
+		return err
+	}
+	printSummary(stdout, m, pipeline.JoinURI(cfg.Output, pipeline.VersionPrefix(m.Dataset, m.Version)))
+	return nil
+}
+
+func planCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {
+	cfg, err := pipeline.LoadConfig(c.Config)
+	if err != nil {
+		return err
+	}
+	plans, err := pipeline.Plan(ctx, cfg, stages.All(), jobOptions(c, ui, &pipeline.Metrics{}))
+	if err != nil {
+		return err
+	}
+	if c.JSON {
+		enc := json.NewEncoder(stdout)
+		enc.SetIndent("", "  ")
+		return enc.Encode(map[string]any{"config": c.Config, "stages": plans})
+	}
+	for _, p := range plans {
+		unit := "partitions"
+		if p.Name == pipeline.StageIngest {
+			unit = "objects"
+		}
+		if !p.Known {
+			fmt.Fprintf(stdout, "%-8s not known until the stage before it has run\n", p.Name)
+			continue
+		}
+		fmt.Fprintf(stdout, "%-8s %d %s: %d cached, %d to compute", p.Name, p.Items, unit, p.Cached, len(p.ToRun))
+		if p.Name == pipeline.StageIngest {
+			fmt.Fprintf(stdout, ", %.1f MB to read", float64(p.Bytes)/1e6)
+		}
+		fmt.Fprintln(stdout)
+		for i, id := range p.ToRun {
+			if i == 10 {
+				fmt.Fprintf(stdout, "         … and %d more\n", len(p.ToRun)-10)
+				break
+			}
+			fmt.Fprintf(stdout, "         %s\n", id)
+		}
+	}
+	return nil
 }

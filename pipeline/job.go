@@ -25,20 +25,22 @@ type Options struct {
 	Metrics *Metrics
 }
 
-// Execute runs every stage over the config's source and commits the version.
-// Nothing is published unless every stage succeeded.
-func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Manifest, error) {
+// Job is a config with its stores opened: what every command (run, stage,
+// commit, plan) starts from.
+type Job struct {
+	Config *Config
+	Env    *Env
+	Out    Store
+	opt    Options
+}
+
+// Open opens the config's stores with the run's settings.
+func Open(ctx context.Context, cfg *Config, opt Options) (*Job, error) {
 	if opt.Now == nil {
 		opt.Now = time.Now
 	}
 	if opt.Log == nil {
 		opt.Log = slog.New(slog.DiscardHandler)
-	}
-	if opt.Version == "" {
-		opt.Version = DefaultVersion(opt.Now())
-	}
-	if err := ValidVersion(opt.Version); err != nil {
-		return nil, err
 	}
 	if opt.Metrics == nil {
 		opt.Metrics = &Metrics{}
@@ -59,26 +61,146 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	if ls, ok := Unwrap(out).(*LocalStore); ok {
 		ls.Durable = true
 	}
-	// Refuse an existing version before doing any work.
-	prefix := VersionPrefix(cfg.Dataset, opt.Version)
-	if _, err := out.Stat(ctx, prefix+ManifestName); err == nil {
-		return nil, fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), ErrVersionExists)
+	env := &Env{Config: cfg, Source: src, Work: work, Parallel: opt.Parallel, Log: opt.Log,
+		Progress: opt.Progress, Resolve: opener.Open, Code: opt.Code}
+	return &Job{Config: cfg, Env: env, Out: out, opt: opt}, nil
+}
+
+// checkVersion validates the version name and refuses one that exists.
+func (j *Job) checkVersion(ctx context.Context, version string) error {
+	if err := ValidVersion(version); err != nil {
+		return err
+	}
+	prefix := VersionPrefix(j.Config.Dataset, version)
+	if _, err := j.Out.Stat(ctx, prefix+ManifestName); err == nil {
+		return fmt.Errorf("commit %s: %w", JoinURI(j.Out.URI(), prefix), ErrVersionExists)
 	} else if !errors.Is(err, ErrNotFound) {
-		return nil, err
+		return err
 	}
-	env := &Env{Config: cfg, Source: src, Work: work, Parallel: opt.Parallel, Log: opt.Log, Progress: opt.Progress, Resolve: opener.Open, Code: opt.Code}
-	res, err := RunStages(ctx, env, stages)
+	return nil
+}
+
+func (j *Job) version() string {
+	if j.opt.Version != "" {
+		return j.opt.Version
+	}
+	return DefaultVersion(j.opt.Now())
+}
+
+// commit builds the manifest of res and publishes the version.
+func (j *Job) commit(ctx context.Context, res *Result, version string) (*Manifest, error) {
+	m, err := BuildManifest(j.Config, res, version, j.opt.Tool, j.opt.Now())
 	if err != nil {
 		return nil, err
 	}
-	m, err := BuildManifest(cfg, res, opt.Version, opt.Tool, opt.Now())
-	if err != nil {
+	if err := Commit(ctx, j.Env.Work, j.Out, m, res); err != nil {
 		return nil, err
 	}
-	if err := Commit(ctx, work, out, m, res); err != nil {
-		return nil, err
-	}
-	opt.Log.Info("storage", "requests", opt.Metrics.Requests.Load(), "retries", opt.Metrics.Retries.Load(),
-		"bytes_read", opt.Metrics.BytesRead.Load(), "bytes_written", opt.Metrics.BytesWritten.Load())
+	mt := j.opt.Metrics
+	j.opt.Log.Info("storage", "requests", mt.Requests.Load(), "retries", mt.Retries.Load(),
+		"bytes_read", mt.BytesRead.Load(), "bytes_written", mt.BytesWritten.Load())
 	return m, nil
+}
+
+// Execute runs every stage over the config's source and commits the version.
+// Nothing is published unless every stage succeeded.
+func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Manifest, error) {
+	j, err := Open(ctx, cfg, opt)
+	if err != nil {
+		return nil, err
+	}
+	version := j.version()
+	// Refuse a bad or existing version before doing any work.
+	if err := j.checkVersion(ctx, version); err != nil {
+		return nil, err
+	}
+	res, err := RunStages(ctx, j.Env, stages)
+	if err != nil {
+		return nil, err
+	}
+	return j.commit(ctx, res, version)
+}
+
+// RunWorker runs worker's share (of workers) of one stage; every stage
+// before it must be complete.
+func RunWorker(ctx context.Context, cfg *Config, stages []Stage, name string, worker, workers int, opt Options) (StageResult, error) {
+	j, err := Open(ctx, cfg, opt)
+	if err != nil {
+		return StageResult{}, err
+	}
+	return RunShare(ctx, j.Env, stages, name, worker, workers)
+}
+
+// CommitVersion publishes a version from sealed stage outputs, written by
+// workers: it fails, naming what is missing, unless every stage is complete.
+// Stage seconds in its manifest are the sums of the items' own times.
+func CommitVersion(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Manifest, error) {
+	j, err := Open(ctx, cfg, opt)
+	if err != nil {
+		return nil, err
+	}
+	version := j.version()
+	if err := j.checkVersion(ctx, version); err != nil {
+		return nil, err
+	}
+	res, err := LoadStages(ctx, j.Env, stages)
+	if err != nil {
+		return nil, err
+	}
+	return j.commit(ctx, res, version)
+}
+
+// StagePlan is what a run would do in one stage.
+type StagePlan struct {
+	Name   string   `json:"name"`
+	Known  bool     `json:"known"` // false when an earlier stage must run first to tell
+	Items  int      `json:"items"`
+	Cached int      `json:"cached"`
+	ToRun  []string `json:"to_run"` // ids of the items to (re)compute
+	Bytes  int64    `json:"bytes"`  // input bytes of those items, where known
+}
+
+// Plan tells what a run would do — per stage, the items already sealed and
+// those to compute, and the bytes to read — without writing anything. Items
+// of a stage after one with work to do depend on that work (which partitions
+// new objects touch is only known once they are read), so they are reported
+// as not known yet.
+func Plan(ctx context.Context, cfg *Config, stages []Stage, opt Options) ([]StagePlan, error) {
+	j, err := Open(ctx, cfg, opt)
+	if err != nil {
+		return nil, err
+	}
+	res := &Result{Sealed: map[string][]Sealed{}}
+	var plans []StagePlan
+	known := true
+	for _, st := range stages {
+		p := StagePlan{Name: st.Name(), Known: known, ToRun: []string{}}
+		if !known {
+			plans = append(plans, p)
+			continue
+		}
+		_, items, err := planStage(ctx, j.Env, st, res)
+		if err != nil {
+			return nil, err
+		}
+		p.Items = len(items)
+		sealed := make([]Sealed, len(items))
+		for i, it := range items {
+			rec, ok, err := loadRecord(ctx, j.Env.Work, st.Name(), it.Key)
+			if err != nil {
+				return nil, err
+			}
+			if ok {
+				p.Cached++
+				sealed[i] = Sealed{Item: it, Summary: rec.Summary}
+				continue
+			}
+			p.ToRun = append(p.ToRun, it.ID)
+			p.Bytes += it.Bytes
+		}
+		res.Sealed[st.Name()] = sealed
+		known = len(p.ToRun) == 0
+		plans = append(plans, p)
+	}
+	return plans, nil
 }

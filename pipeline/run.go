@@ -139,6 +139,7 @@ type doneRecord struct {
 	Stage   string          `json:"stage"`
 	Key     string          `json:"key"`
 	ID      string          `json:"id"`
+	Seconds float64         `json:"seconds"`
 	Summary json.RawMessage `json:"summary"`
 }
 
@@ -175,24 +176,18 @@ func RunStages(ctx context.Context, env *Env, stages []Stage) (*Result, error) {
 	res := &Result{Sealed: map[string][]Sealed{}}
 	for _, st := range stages {
 		start := time.Now()
-		ckey := ConfigKey(st, env.Config, env.Code)
-		items, err := st.Items(ctx, env, ckey, res.Sealed)
+		ckey, items, err := planStage(ctx, env, st, res)
 		if err != nil {
-			return nil, fmt.Errorf("%s: plan: %w", st.Name(), err)
+			return nil, err
 		}
 		sealed, reused, err := runItems(ctx, env, st, items)
 		if err != nil {
 			return nil, err
 		}
-		keys := make([]string, len(items))
-		for i, it := range items {
-			keys[i] = it.Key
-		}
-		sort.Strings(keys)
 		res.Sealed[st.Name()] = sealed
 		res.Stages = append(res.Stages, StageResult{
 			Name:    st.Name(),
-			Key:     HashParts(ckey, keys),
+			Key:     stageKey(ckey, items),
 			Cached:  len(items) > 0 && reused == len(items),
 			Seconds: time.Since(start).Seconds(),
 			Items:   len(items),
@@ -200,6 +195,111 @@ func RunStages(ctx context.Context, env *Env, stages []Stage) (*Result, error) {
 		})
 	}
 	return res, nil
+}
+
+func planStage(ctx context.Context, env *Env, st Stage, res *Result) (string, []Item, error) {
+	ckey := ConfigKey(st, env.Config, env.Code)
+	items, err := st.Items(ctx, env, ckey, res.Sealed)
+	if err != nil {
+		return "", nil, fmt.Errorf("%s: plan: %w", st.Name(), err)
+	}
+	return ckey, items, nil
+}
+
+// stageKey is a stage's key for the manifest: its config key and the keys
+// of all its items (which hold their inputs' keys).
+func stageKey(ckey string, items []Item) string {
+	keys := make([]string, len(items))
+	for i, it := range items {
+		keys[i] = it.Key
+	}
+	sort.Strings(keys)
+	return HashParts(ckey, keys)
+}
+
+// Share is worker i's part of a stage's items, of n workers: the items at
+// positions i, i+n, i+2n… of the stage's own item order. Every worker
+// computes the same item list, so the rule needs no coordination, and which
+// worker ran an item never changes what it wrote.
+func Share(items []Item, worker, workers int) []Item {
+	var out []Item
+	for i := worker; i < len(items); i += workers {
+		out = append(out, items[i])
+	}
+	return out
+}
+
+// IncompleteError says which items of a stage are not sealed yet.
+type IncompleteError struct {
+	Stage   string
+	Missing []string // item ids
+	Total   int
+}
+
+func (e *IncompleteError) Error() string {
+	return fmt.Sprintf("stage %s is not complete: %d of %d items not sealed (first: %s); run its workers first",
+		e.Stage, len(e.Missing), e.Total, e.Missing[0])
+}
+
+// LoadStages reads the seals of every stage without running anything; it
+// fails with an *IncompleteError naming the first stage with unsealed items.
+func LoadStages(ctx context.Context, env *Env, stages []Stage) (*Result, error) {
+	res := &Result{Sealed: map[string][]Sealed{}}
+	for _, st := range stages {
+		ckey, items, err := planStage(ctx, env, st, res)
+		if err != nil {
+			return nil, err
+		}
+		sealed := make([]Sealed, len(items))
+		var missing []string
+		var seconds float64
+		for i, it := range items {
+			rec, ok, err := loadRecord(ctx, env.Work, st.Name(), it.Key)
+			if err != nil {
+				return nil, err
+			}
+			if !ok {
+				missing = append(missing, it.ID)
+				continue
+			}
+			sealed[i] = Sealed{Item: it, Summary: rec.Summary}
+			seconds += rec.Seconds
+		}
+		if len(missing) > 0 {
+			return nil, &IncompleteError{Stage: st.Name(), Missing: missing, Total: len(items)}
+		}
+		res.Sealed[st.Name()] = sealed
+		res.Stages = append(res.Stages, StageResult{Name: st.Name(), Key: stageKey(ckey, items),
+			Seconds: seconds, Items: len(items)})
+	}
+	return res, nil
+}
+
+// RunShare runs worker's share of the stage named name, after checking that
+// every stage before it is complete.
+func RunShare(ctx context.Context, env *Env, stages []Stage, name string, worker, workers int) (StageResult, error) {
+	for i, st := range stages {
+		if st.Name() != name {
+			continue
+		}
+		res, err := LoadStages(ctx, env, stages[:i])
+		if err != nil {
+			return StageResult{}, err
+		}
+		start := time.Now()
+		ckey, items, err := planStage(ctx, env, st, res)
+		if err != nil {
+			return StageResult{}, err
+		}
+		share := Share(items, worker, workers)
+		_, reused, err := runItems(ctx, env, st, share)
+		if err != nil {
+			return StageResult{}, err
+		}
+		return StageResult{Name: name, Key: stageKey(ckey, items), Cached: len(share) > 0 && reused == len(share),
+			Seconds: time.Since(start).Seconds(), Items: len(share), Reused: reused}, nil
+	}
+	return StageResult{}, fmt.Errorf("no stage %q", name)
 }
 
 func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, int, error) {
@@ -237,6 +337,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			if err := DeletePrefix(gctx, env.Work, dir); err != nil {
 				return fmt.Errorf("%s %s: clear: %w", st.Name(), it.ID, err)
 			}
+			began := time.Now()
 			out, err := safeDo(gctx, env, st, it)
 			if err != nil {
 				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, err)
@@ -245,7 +346,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			if err != nil {
 				return fmt.Errorf("%s %s: summary: %w", st.Name(), it.ID, err)
 			}
-			rec, _ := json.Marshal(doneRecord{Stage: st.Name(), Key: it.Key, ID: it.ID, Summary: raw})
+			rec, _ := json.Marshal(doneRecord{Stage: st.Name(), Key: it.Key, ID: it.ID, Seconds: time.Since(began).Seconds(), Summary: raw})
 			if err := Put(gctx, env.Work, dir+doneName, rec, false); err != nil {
 				return fmt.Errorf("%s %s: seal: %w", st.Name(), it.ID, err)
 			}
@@ -265,19 +366,24 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 // LoadSealed returns an item's summary when its completion record exists and
 // matches the key.
 func LoadSealed(ctx context.Context, work Store, stage, key string) (json.RawMessage, bool, error) {
+	rec, ok, err := loadRecord(ctx, work, stage, key)
+	return rec.Summary, ok, err
+}
+
+func loadRecord(ctx context.Context, work Store, stage, key string) (doneRecord, bool, error) {
 	b, err := ReadAll(ctx, work, ItemDir(stage, key)+doneName)
 	if err != nil {
 		if errors.Is(err, ErrNotFound) {
-			return nil, false, nil
+			return doneRecord{}, false, nil
 		}
-		return nil, false, err
+		return doneRecord{}, false, err
 	}
 	var rec doneRecord
 	if err := json.Unmarshal(b, &rec); err != nil || rec.Key != key || rec.Stage != stage {
 		// A damaged record seals nothing; the item is redone.
-		return nil, false, nil
+		return doneRecord{}, false, nil
 	}
-	return rec.Summary, true, nil
+	return rec, true, nil
 }
 
 // safeDo runs one item and turns a panic into that item's error, so a bug

@@ -211,8 +211,8 @@ func (p *Proxy) close() {
 	p.mu.Lock()
 	p.closed = true
 	p.mu.Unlock()
-	p.cancel()
 	_ = p.srv.Close()
+	p.cancel()
 	<-p.served
 	done := make(chan struct{})
 	go func() {
@@ -325,7 +325,10 @@ func (p *Proxy) ServeHTTP(w http.ResponseWriter, req *http.Request) {
 		select {
 		case <-t.C:
 			p.forward.ServeHTTP(w, req)
-		case <-req.Context().Done(): // client gone, or proxy closing
+		case <-req.Context().Done():
+			// The client is gone, or the proxy is closing: no answer at
+			// all (returning would send an empty 200).
+			abort(w, false)
 		}
 	}
 }

@@ -312,6 +312,30 @@ func TestReset(t *testing.T) {
 	}
 }
 
+// A trap for counting in retry tests: on a reused keep-alive connection,
+// net/http itself replays an idempotent bodyless request that met a Reset
+// ("Transport only retries a request upon encountering a network error if
+// the connection has been already been used successfully and if the request
+// is idempotent and either has no body or has its Request.GetBody defined",
+// net/http Transport docs). The client then sees success, and the proxy one
+// request more than the client's own attempts.
+func TestResetOnReusedConnectionIsReplayedByNetHTTP(t *testing.T) {
+	tg := newTarget(t)
+	p := Start(t, tg.URL)
+	c := &http.Client{Timeout: 5 * time.Second} // keep-alive
+	if resp, body, err := get(t, c, p.URL+"/blob/3"); err != nil || resp.StatusCode != 200 || string(body) != "abc" {
+		t.Fatalf("first GET: %v %q", err, body)
+	}
+	p.Set(Rule{Kind: Reset, Times: 1})
+	resp, body, err := get(t, c, p.URL+"/blob/3")
+	if err != nil || resp.StatusCode != 200 || string(body) != "abc" {
+		t.Fatalf("GET on a reused connection through one Reset: %v %q, want a transparent replay", err, body)
+	}
+	if want := map[Kind]int{Reset: 1}; !maps.Equal(p.Injected(), want) || p.Requests() != 3 || tg.count() != 2 {
+		t.Fatalf("Injected %v Requests %d target %d, want %v, 3, 2", p.Injected(), p.Requests(), tg.count(), want)
+	}
+}
+
 // CutBody gives the client the status and the full Content-Length, then
 // exactly half the body (rounded down) and an unexpected EOF; for a target
 // response of unknown length too.
@@ -582,7 +606,7 @@ func TestSetRejectsInvalidRules(t *testing.T) {
 	}{
 		{Rule{Kind: Kind(99)}, "unknown kind Kind(99)"},
 		{Rule{Kind: Status500, Skip: -1}, "negative Skip (-1)"},
-		{Rule{Kind: Status500, Times: -2}, "Times (-2)"},
+		{Rule{Kind: Status500, Times: -2}, "negative Skip (0) or Times (-2)"},
 		{Rule{Kind: Delay}, "kind Delay needs a positive Delay"},
 	} {
 		r := &fatalRecorder{TB: t}
