@@ -403,8 +403,8 @@ func build(dir string, env goEnvironment) (string, error) {
 	defer cancel()
 	cmd := exec.CommandContext(ctx, "go", "install", Package+"@"+Version)
 	// Outside any module and workspace: `go install pkg@version` builds the
-	// pinned module's own dependency versions. -mod flags are refused in that
-	// mode, so they are dropped from GOFLAGS.
+	// pinned module's own dependency versions. A -mod=vendor in GOFLAGS makes
+	// that mode fail ("cannot query module"), so -mod flags are dropped.
 	cmd.Dir = tmp
 	cmd.Env = append(os.Environ(), "GOBIN="+tmp, "GOWORK=off", "GOFLAGS="+withoutMod(env.GOFLAGS))
 	out, err := cmd.CombinedOutput()
