@@ -31,6 +31,9 @@ type Manifest struct {
 	Files        []File                      `json:"files"`
 	Stats        map[string]EmbodimentStats  `json:"stats"`
 	Offsets      map[string]map[string]int64 `json:"goal_offsets"`
+	Reached      map[string]map[string]int64 `json:"goal_reached"`
+	EpisodeSteps map[string]map[string]int64 `json:"episode_steps"`
+	Units        []UnitCount                 `json:"units"`
 	Stages       []StageResult               `json:"stages"`
 	Digest       string                      `json:"digest"`
 }
@@ -54,6 +57,17 @@ type Source struct {
 	Dropped     map[string]int64 `json:"dropped"`
 	DuplicateOf *string          `json:"duplicate_of"`
 	Incomplete  bool             `json:"incomplete"`
+	// Files lists the frames files holding this source's kept frames (their
+	// pairs are in the pairs file of the same split and partition).
+	Files []string `json:"files"`
+}
+
+// UnitCount is what became of one unit's lines; unit "" gathers the lines
+// whose unit could not be read.
+type UnitCount struct {
+	Unit    string           `json:"unit"`
+	Frames  int64            `json:"frames"`
+	Dropped map[string]int64 `json:"dropped"`
 }
 
 // Funnel counts, over the whole version, what came in and what was kept:
@@ -123,10 +137,19 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 		Created: created.UTC().Format(time.RFC3339), Tool: tool,
 		Config: cfg.CanonicalJSON(), ConfigSHA256: cfg.SHA256(), Seed: cfg.Seed,
 		SourceRoot: cfg.Source.URI, Stages: res.Stages,
-		Funnel:  Funnel{Dropped: map[string]int64{}},
-		Stats:   map[string]EmbodimentStats{},
-		Offsets: map[string]map[string]int64{},
-		Sources: []Source{}, Files: []File{}, Counts: []Count{},
+		Funnel:       Funnel{Dropped: map[string]int64{}},
+		Stats:        map[string]EmbodimentStats{},
+		Offsets:      map[string]map[string]int64{},
+		Reached:      map[string]map[string]int64{},
+		EpisodeSteps: map[string]map[string]int64{},
+		Sources:      []Source{}, Files: []File{}, Counts: []Count{}, Units: []UnitCount{},
+	}
+	units := map[string]*UnitCount{}
+	unit := func(name string) *UnitCount {
+		if units[name] == nil {
+			units[name] = &UnitCount{Unit: name, Dropped: map[string]int64{}}
+		}
+		return units[name]
 	}
 	for _, r := range Reasons() {
 		m.Funnel.Dropped[r] = 0
@@ -143,6 +166,14 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 		}
 		m.Funnel.Frames += e.Frames
 		m.Funnel.Episodes += int64(len(e.Episodes))
+		for u, n := range e.Units {
+			unit(u).Frames += n
+		}
+		for u, byReason := range e.DroppedByUnit {
+			for r, n := range byReason {
+				unit(u).Dropped[r] += n
+			}
+		}
 		for src, byReason := range e.Dropped {
 			if later[src] == nil {
 				later[src] = map[string]int64{}
@@ -167,6 +198,11 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 		for r, n := range s.Dropped {
 			src.Dropped[r] += n
 		}
+		for u, byReason := range s.DroppedByUnit {
+			for r, n := range byReason {
+				unit(u).Dropped[r] += n
+			}
+		}
 		for r, n := range later[s.Key] {
 			src.Dropped[r] += n
 			src.Kept -= n
@@ -177,6 +213,7 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 		}
 		m.Sources = append(m.Sources, src)
 	}
+	srcFiles := map[string][]string{}
 	obs, act := map[string]*Moments{}, map[string]*Moments{}
 	for _, s := range res.Sealed[StagePack] { // partition order: merges are reproducible
 		var p PackSummary
@@ -199,18 +236,36 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 			act[name].Merge(p.Act[name])
 		}
 		for strat, byOff := range p.Offsets {
-			if m.Offsets[strat] == nil {
-				m.Offsets[strat] = map[string]int64{}
-			}
 			for off, n := range byOff {
-				m.Offsets[strat][fmt.Sprint(off)] += n
+				AddCount(m.Offsets, strat, fmt.Sprint(off), n)
 			}
+		}
+		for strat, byOff := range p.Reached {
+			for off, n := range byOff {
+				AddCount(m.Reached, strat, fmt.Sprint(off), n)
+			}
+		}
+		for emb, bySteps := range p.Steps {
+			for steps, n := range bySteps {
+				AddCount(m.EpisodeSteps, emb, fmt.Sprint(steps), n)
+			}
+		}
+		for src, files := range p.SourceFiles {
+			srcFiles[src] = append(srcFiles[src], files...)
 		}
 	}
 	for name := range cfg.Embodiments {
 		m.Stats[name] = EmbodimentStats{Obs: vectorStats(obs[name]), Act: vectorStats(act[name])}
 	}
 	m.Counts = mergeCounts(m.Counts)
+	for i := range m.Sources {
+		files := srcFiles[m.Sources[i].Key]
+		sort.Strings(files)
+		m.Sources[i].Files = append([]string{}, files...)
+	}
+	for _, name := range sortedKeys(units) {
+		m.Units = append(m.Units, *units[name])
+	}
 	sort.Slice(m.Files, func(i, j int) bool { return m.Files[i].Path < m.Files[j].Path })
 	m.Digest = Digest(m.ConfigSHA256, m.Sources, m.Files)
 	return m, nil

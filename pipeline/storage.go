@@ -383,3 +383,5 @@ func (u *localUpload) Abort() error {
 	u.f.Close()
 	return os.Remove(u.f.Name())
 }
+
+func absPath(p string) (string, error) { return filepath.Abs(p) }

@@ -43,7 +43,10 @@ type IngestSummary struct {
 	Lines      int64            `json:"lines"`
 	Kept       int64            `json:"kept"`
 	Dropped    map[string]int64 `json:"dropped"`
-	Incomplete bool             `json:"incomplete"`
+	// DroppedByUnit splits Dropped by the line's unit; "" holds lines whose
+	// unit could not be read (oversize, truncated, malformed).
+	DroppedByUnit map[string]map[string]int64 `json:"dropped_by_unit"`
+	Incomplete    bool                        `json:"incomplete"`
 	// Runs lists, per partition (five-digit name), the work keys of the
 	// sorted runs holding this object's accepted frames.
 	Runs map[string][]string `json:"runs"`
@@ -66,6 +69,10 @@ type EpisodesSummary struct {
 	Episodes []EpisodeInfo `json:"episodes"`
 	// Dropped counts the frames this stage dropped, per source key and reason.
 	Dropped map[string]map[string]int64 `json:"dropped"`
+	// DroppedByUnit counts them per unit and reason.
+	DroppedByUnit map[string]map[string]int64 `json:"dropped_by_unit"`
+	// Units counts the kept frames per unit.
+	Units map[string]int64 `json:"units"`
 }
 
 // GoalsSummary seals one partition's goals.
@@ -160,8 +167,14 @@ type PackSummary struct {
 	// Obs and Act hold the train split's moments per embodiment.
 	Obs map[string]*Moments `json:"obs"`
 	Act map[string]*Moments `json:"act"`
-	// Offsets counts pairs by strategy and goal offset, for reports.
+	// Offsets counts pairs by strategy and goal offset, for reports;
+	// Reached counts those whose goal was reached.
 	Offsets map[string]map[int32]int64 `json:"offsets,omitempty"`
+	Reached map[string]map[int32]int64 `json:"reached,omitempty"`
+	// Steps counts episodes by embodiment and length.
+	Steps map[string]map[int]int64 `json:"steps"`
+	// SourceFiles lists, per source key, the frames files holding its frames.
+	SourceFiles map[string][]string `json:"source_files"`
 }
 
 // PartName is the five-digit partition name used in keys and file names.
@@ -190,4 +203,14 @@ func Sources(sealed []Sealed) ([]SourceSummary, error) {
 		}
 	}
 	return out, nil
+}
+
+// AddCount adds n to m[a][b], making the inner map when needed.
+func AddCount[K comparable](m map[string]map[K]int64, a string, b K, n int64) {
+	in := m[a]
+	if in == nil {
+		in = map[K]int64{}
+		m[a] = in
+	}
+	in[b] += n
 }

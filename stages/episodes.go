@@ -75,20 +75,20 @@ func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) 
 	in := it.Meta.(episodesInput)
 	f32 := env.Config.Float == "float32"
 	dir := pipeline.ItemDir(st.Name(), it.Key)
-	sum := pipeline.EpisodesSummary{Partition: in.Partition, File: dir + "episodes.arrow", Dropped: map[string]map[string]int64{}}
+	sum := pipeline.EpisodesSummary{Partition: in.Partition, File: dir + "episodes.arrow", Dropped: map[string]map[string]int64{},
+		DroppedByUnit: map[string]map[string]int64{}, Units: map[string]int64{}}
 	src, closeAll, err := openMerged(ctx, env.Work, dir+"merge/", in.Runs, byUnitTime, f32)
 	if err != nil {
 		return nil, err
 	}
 	defer closeAll()
 	out := &episodeSink{ctx: ctx, work: env.Work, dir: dir, f32: f32}
-	seg := newSegmenter(env.Config.Episodes, func(src, reason string) {
-		m := sum.Dropped[src]
-		if m == nil {
-			m = map[string]int64{}
-			sum.Dropped[src] = m
-		}
-		m[reason]++
+	var seg *segmenter
+	// Drops happen while seg.unit is the dropped frame's unit: a duplicate
+	// is of the current unit, and a short chunk is cut before the unit moves on.
+	seg = newSegmenter(env.Config.Episodes, func(src, reason string) {
+		pipeline.AddCount(sum.Dropped, src, reason, 1)
+		pipeline.AddCount(sum.DroppedByUnit, seg.unit, reason, 1)
 	}, out.add)
 	var f schemas.Frame
 	for src.Next(&f) {
@@ -107,6 +107,9 @@ func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) 
 		return nil, err
 	}
 	sum.Episodes, sum.Frames = infos, frames
+	for _, e := range infos {
+		sum.Units[e.Unit] += int64(e.Steps)
+	}
 	if err := pipeline.DeletePrefix(ctx, env.Work, dir+"merge/"); err != nil {
 		return nil, err
 	}

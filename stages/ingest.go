@@ -96,7 +96,7 @@ func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (a
 	in := &ingester{
 		env: env, obj: obj, dir: pipeline.ItemDir(st.Name(), it.Key), uri: uri,
 		sum: pipeline.IngestSummary{Key: obj.Key, ETag: obj.ETag, Version: obj.Version,
-			Dropped: map[string]int64{}, Runs: map[string][]string{}},
+			Dropped: map[string]int64{}, DroppedByUnit: map[string]map[string]int64{}, Runs: map[string][]string{}},
 		parts: map[string]int{},
 	}
 	if err := in.run(ctx); err != nil {
@@ -211,7 +211,10 @@ type zstdCloser struct{ *zstd.Decoder }
 
 func (z zstdCloser) Close() error { z.Decoder.Close(); return nil }
 
-func (in *ingester) drop(reason string) { in.sum.Dropped[reason]++ }
+func (in *ingester) drop(reason, unit string) {
+	in.sum.Dropped[reason]++
+	pipeline.AddCount(in.sum.DroppedByUnit, unit, reason, 1)
+}
 
 // lines reads the decompressed stream line by line.
 func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader) error {
@@ -255,16 +258,16 @@ func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader
 		in.sum.Lines++
 		switch {
 		case oversize:
-			in.drop(pipeline.Oversize)
+			in.drop(pipeline.Oversize, "")
 		case broken:
 			// The stream was cut: what was decoded of this line is partial.
-			in.drop(pipeline.Truncated)
+			in.drop(pipeline.Truncated, "")
 		default:
 			if err := jsonl.Parse(line, &parsed); err != nil {
 				if !eol {
-					in.drop(pipeline.Truncated)
+					in.drop(pipeline.Truncated, "")
 				} else {
-					in.drop(pipeline.Malformed)
+					in.drop(pipeline.Malformed, "")
 				}
 				break
 			}
@@ -273,7 +276,7 @@ func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader
 				return fmt.Errorf("line %d: %w", lineNo, err)
 			}
 			if reason != "" {
-				in.drop(reason)
+				in.drop(reason, parsed.Unit)
 				break
 			}
 			c.lastT[parsed.Unit] = parsed.T

@@ -259,7 +259,8 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		camIdx[name] = idx
 	}
 	sum := pipeline.PackSummary{Partition: part, Obs: map[string]*pipeline.Moments{}, Act: map[string]*pipeline.Moments{},
-		Offsets: map[string]map[int32]int64{}}
+		Offsets: map[string]map[int32]int64{}, Reached: map[string]map[int32]int64{},
+		Steps: map[string]map[int]int64{}, SourceFiles: map[string][]string{}}
 	counts := map[[2]string]*pipeline.Count{}
 	shards := map[[2]string]*shard{} // (table, split)
 	options := func(table, split string) []parquet.WriterOption {
@@ -272,6 +273,10 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			parquet.KeyValueMetadata("split", split),
 			parquet.KeyValueMetadata("partition", fmt.Sprint(part)),
 			parquet.KeyValueMetadata("config_sha256", cfg.SHA256()),
+			// Rows are sorted by episode, so row-group statistics already
+			// locate an episode; the bloom filter answers "not in this
+			// file" without reading a page (for lineage queries).
+			parquet.BloomFilters(parquet.SplitBlockFilter(10, "episode")),
 		}
 	}
 	open := func(table, split string) (*shard, error) {
@@ -359,6 +364,14 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			return nil, err
 		}
 		fs.file.Episodes++
+		pipeline.AddCount(sum.Steps, emb, len(ep), 1)
+		for i := range ep {
+			if files := sum.SourceFiles[ep[i].Src]; len(files) == 0 || files[len(files)-1] != fs.file.Path {
+				if !slices.Contains(files, fs.file.Path) {
+					sum.SourceFiles[ep[i].Src] = append(files, fs.file.Path)
+				}
+			}
+		}
 		rows := fs.rowsBuf[:0]
 		for i := range ep {
 			var r parquet.Row
@@ -397,12 +410,10 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			}
 			ps.file.Rows++
 			cnt.Pairs++
-			off := sum.Offsets[name]
-			if off == nil {
-				off = map[int32]int64{}
-				sum.Offsets[name] = off
+			pipeline.AddCount(sum.Offsets, name, g.GoalOffset, 1)
+			if g.Reward == 1 {
+				pipeline.AddCount(sum.Reached, name, g.GoalOffset, 1)
 			}
-			off[g.GoalOffset]++
 			haveG = gr.Next(&g)
 		}
 		if ps != nil {
