@@ -55,6 +55,11 @@ func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) erro
 			}
 		}
 	}
+	if q := m.Quarantine; q != nil {
+		if err := publish(ctx, work, q.Work, out, prefix+q.Path, q.SHA256); err != nil {
+			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+q.Path), err)
+		}
+	}
 	b, err := json.MarshalIndent(m, "", "  ")
 	if err != nil {
 		return fmt.Errorf("commit: manifest: %w", err)

@@ -25,6 +25,10 @@ type Config struct {
 	Float       string                 `yaml:"float" json:"float"`
 	Parquet     ParquetConfig          `yaml:"parquet" json:"parquet"`
 	Storage     StorageConfig          `yaml:"storage" json:"storage"`
+	// Quarantine writes every dropped line, with its reason, object and line
+	// number, to quarantine/ in the version. Off by default (and then absent
+	// from the JSON form, so config_sha256 of older configs is unchanged).
+	Quarantine bool `yaml:"quarantine" json:"quarantine,omitempty"`
 
 	// Dir is the folder of the config file; plain paths are relative to it.
 	Dir string `yaml:"-" json:"-"`

@@ -59,7 +59,7 @@ func defaultInclude() []string {
 // key, and a test checks that the JSON Schema lists exactly these.
 func configKeys() map[string][]string {
 	return map[string][]string{
-		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet", "storage"},
+		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet", "storage", "quarantine"},
 		"source":        {"uri", "include", "exclude", "max_line_bytes"},
 		"embodiments.*": {"obs", "act", "obs_low", "obs_high", "act_low", "act_high", "cameras", "goal_dims", "goal_tolerance"},
 		"episodes":      {"max_gap", "min_steps", "max_steps"},
@@ -463,6 +463,13 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 	}
 	if f, ok := fs["storage"]; ok {
 		l.storage(f, keys["storage"], &c.Storage)
+	}
+	if f, ok := fs["quarantine"]; ok {
+		if f.val.Kind != yaml.ScalarNode || f.val.ShortTag() != "!!bool" {
+			l.fail(f.key, f.line, "must be true or false, got %s", describeNode(f.val))
+		} else {
+			c.Quarantine = f.val.Value == "true"
+		}
 	}
 	return c
 }

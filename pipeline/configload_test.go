@@ -327,7 +327,7 @@ const (
 )
 
 func TestBadConfigs(t *testing.T) {
-	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet, storage"
+	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet, storage, quarantine"
 	const embKeys = "obs, act, obs_low, obs_high, act_low, act_high, cameras, goal_dims, goal_tolerance"
 	const locations = "s3://bucket/prefix, file:///abs/dir or a plain path"
 	const obsBound = "must be a finite number or a list of 10 finite numbers (one per obs dim)"
@@ -808,6 +808,9 @@ func TestSchemaMatchesLoader(t *testing.T) {
 				got = defaultWork
 			case sec == "" && k == "output":
 				got = defaultOutput
+			case sec == "" && k == "quarantine":
+				// Omitted from the JSON form when off, so older hashes hold.
+				got = resolved[k] != nil && resolved[k].(bool)
 			case sec == "":
 				got = resolved[k]
 			case sec == "embodiments.*":
@@ -826,10 +829,10 @@ func TestSchemaMatchesLoader(t *testing.T) {
 			}
 		}
 	}
-	// 23 defaults of SPEC §2's keys, and 4 of the storage section
-	// (max_concurrency, part_size, attempts, timeout).
-	if checked != 27 {
-		t.Errorf("checked %d schema defaults, want 27", checked)
+	// 23 defaults of SPEC §2's keys, 4 of the storage section
+	// (max_concurrency, part_size, attempts, timeout) and quarantine.
+	if checked != 28 {
+		t.Errorf("checked %d schema defaults, want 28", checked)
 	}
 }
 

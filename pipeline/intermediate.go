@@ -563,3 +563,112 @@ func (m *Merge) Next(f *schemas.Frame) bool {
 
 // Err implements FrameSource.
 func (m *Merge) Err() error { return m.err }
+
+// DroppedWriter appends dropped lines to an Arrow IPC stream.
+type DroppedWriter struct {
+	bw   *bufio.Writer
+	w    *ipc.Writer
+	b    *array.RecordBuilder
+	rows int
+}
+
+// NewDroppedWriter starts a quarantine stream on w.
+func NewDroppedWriter(w io.Writer) *DroppedWriter {
+	bw := bufio.NewWriterSize(w, 256<<10)
+	schema := schemas.DroppedArrow()
+	return &DroppedWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: array.NewRecordBuilder(memory.DefaultAllocator, schema)}
+}
+
+// Write appends one dropped line.
+func (dw *DroppedWriter) Write(d *schemas.Dropped) error {
+	dw.b.Field(0).(*array.StringBuilder).Append(d.Src)
+	dw.b.Field(1).(*array.Int64Builder).Append(d.SrcLine)
+	dw.b.Field(2).(*array.StringBuilder).Append(d.Reason)
+	dw.b.Field(3).(*array.StringBuilder).Append(d.Stage)
+	if d.Unit != "" {
+		dw.b.Field(4).(*array.StringBuilder).Append(d.Unit)
+	} else {
+		dw.b.Field(4).AppendNull()
+	}
+	if d.HasT {
+		dw.b.Field(5).(*array.Int64Builder).Append(d.T)
+	} else {
+		dw.b.Field(5).AppendNull()
+	}
+	if d.Line != nil {
+		dw.b.Field(6).(*array.BinaryBuilder).Append(d.Line)
+	} else {
+		dw.b.Field(6).AppendNull()
+	}
+	dw.rows++
+	if dw.rows >= batchRows {
+		return dw.flush()
+	}
+	return nil
+}
+
+func (dw *DroppedWriter) flush() error {
+	if dw.rows == 0 {
+		return nil
+	}
+	rec := dw.b.NewRecordBatch()
+	defer rec.Release()
+	dw.rows = 0
+	return dw.w.Write(rec)
+}
+
+// Close flushes and ends the stream; it does not close the underlying writer.
+func (dw *DroppedWriter) Close() error {
+	defer dw.b.Release()
+	if err := dw.flush(); err != nil {
+		return err
+	}
+	if err := dw.w.Close(); err != nil {
+		return err
+	}
+	return dw.bw.Flush()
+}
+
+// ReadDropped calls fn for every dropped line of the stream at key, in order.
+func ReadDropped(ctx context.Context, s Store, key string, fn func(*schemas.Dropped) error) error {
+	rc, err := s.Open(ctx, key, 0)
+	if err != nil {
+		return err
+	}
+	defer rc.Close()
+	r, err := ipc.NewReader(bufio.NewReaderSize(rc, readBuffer), ipc.WithSchema(schemas.DroppedArrow()))
+	if err != nil {
+		return fmt.Errorf("read quarantine %s: %w", JoinURI(s.URI(), key), err)
+	}
+	defer r.Release()
+	var d schemas.Dropped
+	for r.Next() {
+		rec := r.RecordBatch()
+		src := rec.Column(0).(*array.String)
+		line := rec.Column(1).(*array.Int64)
+		reason := rec.Column(2).(*array.String)
+		stage := rec.Column(3).(*array.String)
+		unit := rec.Column(4).(*array.String)
+		t := rec.Column(5).(*array.Int64)
+		raw := rec.Column(6).(*array.Binary)
+		for i := 0; i < int(rec.NumRows()); i++ {
+			d = schemas.Dropped{Src: src.Value(i), SrcLine: line.Value(i), Reason: reason.Value(i), Stage: stage.Value(i)}
+			if unit.IsValid(i) {
+				d.Unit = unit.Value(i)
+			}
+			if t.IsValid(i) {
+				d.T, d.HasT = t.Value(i), true
+			}
+			if raw.IsValid(i) {
+				d.Line = append([]byte{}, raw.Value(i)...)
+			}
+			if err := fn(&d); err != nil {
+				return err
+			}
+		}
+	}
+	if err := r.Err(); err != nil {
+		return fmt.Errorf("read quarantine %s: %w", JoinURI(s.URI(), key), err)
+	}
+	return nil
+}

@@ -93,6 +93,11 @@ func (j *Job) commit(ctx context.Context, res *Result, version string) (*Manifes
 	if err != nil {
 		return nil, err
 	}
+	if j.Config.Quarantine {
+		if m.Quarantine, err = writeQuarantine(ctx, j.Config, j.Env.Work, res); err != nil {
+			return nil, fmt.Errorf("quarantine: %w", err)
+		}
+	}
 	if err := Commit(ctx, j.Env.Work, j.Out, m, res); err != nil {
 		return nil, err
 	}

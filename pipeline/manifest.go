@@ -35,7 +35,10 @@ type Manifest struct {
 	EpisodeSteps map[string]map[string]int64 `json:"episode_steps"`
 	Units        []UnitCount                 `json:"units"`
 	Stages       []StageResult               `json:"stages"`
-	Digest       string                      `json:"digest"`
+	// Quarantine is the file of dropped lines (config quarantine: true), or
+	// null.
+	Quarantine *QuarantineFile `json:"quarantine"`
+	Digest     string          `json:"digest"`
 }
 
 // ToolInfo names the code that made a version.

@@ -35,18 +35,21 @@ func Reasons() []string {
 
 // IngestSummary seals one ingested object.
 type IngestSummary struct {
-	Key        string           `json:"key"`
-	Bytes      int64            `json:"bytes"`
-	SHA256     string           `json:"sha256"`
-	ETag       string           `json:"etag,omitempty"`
-	Version    string           `json:"version_id,omitempty"`
-	Lines      int64            `json:"lines"`
-	Kept       int64            `json:"kept"`
-	Dropped    map[string]int64 `json:"dropped"`
+	Key     string           `json:"key"`
+	Bytes   int64            `json:"bytes"`
+	SHA256  string           `json:"sha256"`
+	ETag    string           `json:"etag,omitempty"`
+	Version string           `json:"version_id,omitempty"`
+	Lines   int64            `json:"lines"`
+	Kept    int64            `json:"kept"`
+	Dropped map[string]int64 `json:"dropped"`
 	// DroppedByUnit splits Dropped by the line's unit; "" holds lines whose
 	// unit could not be read (oversize, truncated, malformed).
 	DroppedByUnit map[string]map[string]int64 `json:"dropped_by_unit"`
 	Incomplete    bool                        `json:"incomplete"`
+	// Quarantine is the work key of this object's dropped lines, when the
+	// config asks for a quarantine and a line was dropped.
+	Quarantine string `json:"quarantine,omitempty"`
 	// Runs lists, per partition (five-digit name), the work keys of the
 	// sorted runs holding this object's accepted frames.
 	Runs map[string][]string `json:"runs"`
@@ -73,6 +76,9 @@ type EpisodesSummary struct {
 	DroppedByUnit map[string]map[string]int64 `json:"dropped_by_unit"`
 	// Units counts the kept frames per unit.
 	Units map[string]int64 `json:"units"`
+	// Quarantine is the work key of the frames this stage dropped, when the
+	// config asks for a quarantine and a frame was dropped.
+	Quarantine string `json:"quarantine,omitempty"`
 }
 
 // GoalsSummary seals one partition's goals.

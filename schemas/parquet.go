@@ -182,3 +182,14 @@ func (ft *FrameTable) list(row parquet.Row, v []float64, present bool, l leaf) p
 // bytesOf views a string's bytes without copying: the writer copies values
 // into its column buffers, and strings are never written through.
 func bytesOf(s string) []byte { return unsafe.Slice(unsafe.StringData(s), len(s)) }
+
+// QuarantineRow is one row of quarantine/part-00000.parquet.
+type QuarantineRow struct {
+	Src     string  `parquet:"src,dict"`
+	SrcLine int64   `parquet:"src_line"`
+	Reason  string  `parquet:"reason,dict"`
+	Stage   string  `parquet:"stage,dict"`
+	Unit    *string `parquet:"unit,optional,dict"`
+	T       *int64  `parquet:"t,optional,timestamp(nanosecond)"`
+	Line    []byte  `parquet:"line,optional"`
+}

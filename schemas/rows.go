@@ -167,3 +167,35 @@ func GoalArrow() *arrow.Schema {
 		{Name: "reward", Type: arrow.PrimitiveTypes.Float32},
 	}, nil)
 }
+
+// Dropped is one dropped line, for the opt-in quarantine (config
+// `quarantine: true`): where it was, why it was dropped, and what is known of
+// it. Line holds the line as read (at most QuarantineLineBytes; nil for an
+// oversize line, whose bytes were never kept, and for lines dropped after
+// parsing, which the episodes stage sees as frames).
+type Dropped struct {
+	Src     string
+	SrcLine int64
+	Reason  string
+	Stage   string
+	Unit    string // "" when unknown
+	T       int64
+	HasT    bool
+	Line    []byte
+}
+
+// QuarantineLineBytes bounds the bytes of one quarantined line.
+const QuarantineLineBytes = 64 << 10
+
+// DroppedArrow is the Arrow schema of quarantine intermediates.
+func DroppedArrow() *arrow.Schema {
+	return arrow.NewSchema([]arrow.Field{
+		{Name: "src", Type: arrow.BinaryTypes.String},
+		{Name: "src_line", Type: arrow.PrimitiveTypes.Int64},
+		{Name: "reason", Type: arrow.BinaryTypes.String},
+		{Name: "stage", Type: arrow.BinaryTypes.String},
+		{Name: "unit", Type: arrow.BinaryTypes.String, Nullable: true},
+		{Name: "t", Type: arrow.PrimitiveTypes.Int64, Nullable: true},
+		{Name: "line", Type: arrow.BinaryTypes.Binary, Nullable: true},
+	}, nil)
+}

@@ -20,7 +20,7 @@ func (Episodes) Name() string { return "episodes" }
 
 // Reads implements pipeline.Stage.
 func (Episodes) Reads(cfg *pipeline.Config) any {
-	return map[string]any{"episodes": cfg.Episodes, "partitions": cfg.Partitions}
+	return map[string]any{"episodes": cfg.Episodes, "partitions": cfg.Partitions, "quarantine": cfg.Quarantine}
 }
 
 // episodesInput is one partition's input: the runs of every object that is
@@ -83,13 +83,13 @@ func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) 
 	}
 	defer closeAll()
 	out := &episodeSink{ctx: ctx, work: env.Work, dir: dir, f32: f32}
-	var seg *segmenter
-	// Drops happen while seg.unit is the dropped frame's unit: a duplicate
-	// is of the current unit, and a short chunk is cut before the unit moves on.
-	seg = newSegmenter(env.Config.Episodes, func(src, reason string) {
-		pipeline.AddCount(sum.Dropped, src, reason, 1)
-		pipeline.AddCount(sum.DroppedByUnit, seg.unit, reason, 1)
+	q := newQuarantine(ctx, env, dir+"quarantine.arrow")
+	seg := newSegmenter(env.Config.Episodes, func(f *schemas.Frame, reason string) {
+		pipeline.AddCount(sum.Dropped, f.Src, reason, 1)
+		pipeline.AddCount(sum.DroppedByUnit, f.Unit, reason, 1)
+		q.add(&schemas.Dropped{Src: f.Src, SrcLine: f.Line, Reason: reason, Stage: st.Name(), Unit: f.Unit, T: f.T, HasT: true})
 	}, out.add)
+	defer q.abort()
 	var f schemas.Frame
 	for src.Next(&f) {
 		if err := seg.feed(&f); err != nil {
@@ -104,6 +104,9 @@ func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) 
 	}
 	infos, frames, err := out.close(sum.File)
 	if err != nil {
+		return nil, err
+	}
+	if sum.Quarantine, err = q.close(); err != nil {
 		return nil, err
 	}
 	sum.Episodes, sum.Frames = infos, frames
@@ -146,7 +149,7 @@ func byEpisodeStep(a, b *schemas.Frame) bool {
 type segmenter struct {
 	maxGap   uint64
 	min, max int
-	drop     func(src, reason string)
+	drop     func(f *schemas.Frame, reason string)
 	emit     func(ep []schemas.Frame) error
 
 	unit    string
@@ -156,7 +159,7 @@ type segmenter struct {
 	cur     []schemas.Frame
 }
 
-func newSegmenter(c pipeline.EpisodeConfig, drop func(src, reason string), emit func([]schemas.Frame) error) *segmenter {
+func newSegmenter(c pipeline.EpisodeConfig, drop func(f *schemas.Frame, reason string), emit func([]schemas.Frame) error) *segmenter {
 	return &segmenter{maxGap: uint64(c.MaxGap), min: c.MinSteps, max: c.MaxSteps, drop: drop, emit: emit}
 }
 
@@ -171,9 +174,9 @@ func (s *segmenter) feed(f *schemas.Frame) error {
 		newEpisode = true
 	case f.T == s.prev.T:
 		if schemas.SameContent(&s.prev, f) {
-			s.drop(f.Src, pipeline.Duplicate)
+			s.drop(f, pipeline.Duplicate)
 		} else {
-			s.drop(f.Src, pipeline.Conflict)
+			s.drop(f, pipeline.Conflict)
 		}
 		return nil
 	default:
@@ -206,7 +209,7 @@ func (s *segmenter) cut() error {
 	}
 	if len(ep) < s.min {
 		for i := range ep {
-			s.drop(ep[i].Src, pipeline.ShortEpisode)
+			s.drop(&ep[i], pipeline.ShortEpisode)
 		}
 		return nil
 	}

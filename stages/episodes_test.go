@@ -35,7 +35,8 @@ type segmented struct {
 func segment(t *testing.T, cfg pipeline.EpisodeConfig, frames []schemas.Frame) segmented {
 	t.Helper()
 	out := segmented{dropped: map[string]map[string]int{}}
-	s := newSegmenter(cfg, func(src, reason string) {
+	s := newSegmenter(cfg, func(f *schemas.Frame, reason string) {
+		src := f.Src
 		if out.dropped[src] == nil {
 			out.dropped[src] = map[string]int{}
 		}

@@ -51,6 +51,7 @@ func (Ingest) Reads(cfg *pipeline.Config) any {
 		"embodiments":    embs,
 		"float":          cfg.Float,
 		"partitions":     cfg.Partitions,
+		"quarantine":     cfg.Quarantine,
 	}
 }
 
@@ -99,7 +100,13 @@ func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (a
 			Dropped: map[string]int64{}, DroppedByUnit: map[string]map[string]int64{}, Runs: map[string][]string{}},
 		parts: map[string]int{},
 	}
+	in.q = newQuarantine(ctx, env, in.dir+"quarantine.arrow")
+	defer in.q.abort()
 	if err := in.run(ctx); err != nil {
+		return nil, fmt.Errorf("ingest %s: %w", uri, err)
+	}
+	var err error
+	if in.sum.Quarantine, err = in.q.close(); err != nil {
 		return nil, fmt.Errorf("ingest %s: %w", uri, err)
 	}
 	return in.sum, nil
@@ -116,6 +123,12 @@ type ingester struct {
 	chunk     []schemas.Frame
 	chunkSize int
 	runs      int
+
+	// The line being decided, for the quarantine.
+	q       *quarantine
+	lineNo  int64
+	raw     []byte
+	parsedT int64
 }
 
 // sourceReader counts and hashes the stored bytes as they are read, and keeps
@@ -211,9 +224,20 @@ type zstdCloser struct{ *zstd.Decoder }
 
 func (z zstdCloser) Close() error { z.Decoder.Close(); return nil }
 
+// drop counts the current line as dropped, and quarantines it when asked.
 func (in *ingester) drop(reason, unit string) {
 	in.sum.Dropped[reason]++
 	pipeline.AddCount(in.sum.DroppedByUnit, unit, reason, 1)
+	if in.q != nil {
+		d := schemas.Dropped{Src: in.obj.Key, SrcLine: in.lineNo, Reason: reason, Stage: "ingest", Unit: unit}
+		if unit != "" {
+			d.T, d.HasT = in.parsedT, true
+		}
+		if in.raw != nil {
+			d.Line = append([]byte{}, in.raw[:min(len(in.raw), schemas.QuarantineLineBytes)]...)
+		}
+		in.q.add(&d)
+	}
 }
 
 // lines reads the decompressed stream line by line.
@@ -248,6 +272,7 @@ func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader
 			break
 		}
 		lineNo++
+		in.lineNo, in.raw = lineNo, line
 		if !oversize && isBlank(line) {
 			if broken {
 				in.sum.Incomplete = true
@@ -271,6 +296,7 @@ func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader
 				}
 				break
 			}
+			in.parsedT = parsed.T
 			reason, err := runChecks(ctx, checks, c)
 			if err != nil {
 				return fmt.Errorf("line %d: %w", lineNo, err)
