@@ -31,12 +31,47 @@ const (
 // up to maxFanIn streams open, so this and a batch bound its memory.
 const readBuffer = 128 << 10
 
+// batchStream is the part every intermediate writer shares: a record
+// builder whose rows go out as one record batch at a time.
+type batchStream struct {
+	bw   *bufio.Writer
+	w    *ipc.Writer
+	b    *array.RecordBuilder
+	rows int
+}
+
+func newBatchStream(w io.Writer, schema *arrow.Schema, buf int) batchStream {
+	bw := bufio.NewWriterSize(w, buf)
+	return batchStream{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: array.NewRecordBuilder(memory.DefaultAllocator, schema)}
+}
+
+// flush writes the rows built so far as one record batch.
+func (bs *batchStream) flush() error {
+	if bs.rows == 0 {
+		return nil
+	}
+	rec := bs.b.NewRecordBatch()
+	defer rec.Release()
+	bs.rows = 0
+	return bs.w.Write(rec)
+}
+
+// Close flushes the last batch and ends the stream; it does not close the
+// underlying writer.
+func (bs *batchStream) Close() error {
+	defer bs.b.Release()
+	if err := bs.flush(); err != nil {
+		return err
+	}
+	if err := bs.w.Close(); err != nil {
+		return err
+	}
+	return bs.bw.Flush()
+}
+
 // FrameWriter appends frames to an Arrow IPC stream.
 type FrameWriter struct {
-	bw    *bufio.Writer
-	w     *ipc.Writer
-	b     *array.RecordBuilder
-	rows  int
+	batchStream
 	bytes int
 	total int64
 
@@ -107,10 +142,8 @@ func ipcOptions(schema *arrow.Schema) []ipc.Option {
 
 // NewFrameWriter starts a frame stream on w; f32 stores vectors as float32.
 func NewFrameWriter(w io.Writer, f32 bool) *FrameWriter {
-	bw := bufio.NewWriterSize(w, 1<<20)
-	schema := schemas.FrameArrow(f32)
-	b := array.NewRecordBuilder(memory.DefaultAllocator, schema)
-	fw := &FrameWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: b}
+	fw := &FrameWriter{batchStream: newBatchStream(w, schemas.FrameArrow(f32), 1<<20)}
+	b := fw.b
 	fw.unit = b.Field(0).(*array.StringBuilder)
 	fw.emb = b.Field(1).(*array.StringBuilder)
 	fw.t = b.Field(2).(*array.Int64Builder)
@@ -174,6 +207,7 @@ func (fw *FrameWriter) Write(f *schemas.Frame) error {
 	fw.total++
 	fw.bytes += n + 8*(len(f.Obs)+len(f.Act)) + 64
 	if fw.rows >= batchRows || fw.bytes >= batchBytes {
+		fw.bytes = 0
 		return fw.flush()
 	}
 	return nil
@@ -181,29 +215,6 @@ func (fw *FrameWriter) Write(f *schemas.Frame) error {
 
 // Rows is the number of frames written so far.
 func (fw *FrameWriter) Rows() int64 { return fw.total }
-
-func (fw *FrameWriter) flush() error {
-	if fw.rows == 0 {
-		return nil
-	}
-	rec := fw.b.NewRecordBatch()
-	defer rec.Release()
-	fw.rows, fw.bytes = 0, 0
-	return fw.w.Write(rec)
-}
-
-// Close flushes the last batch and ends the stream; it does not close the
-// underlying writer.
-func (fw *FrameWriter) Close() error {
-	defer fw.b.Release()
-	if err := fw.flush(); err != nil {
-		return err
-	}
-	if err := fw.w.Close(); err != nil {
-		return err
-	}
-	return fw.bw.Flush()
-}
 
 // FrameReader reads frames from an Arrow IPC stream one at a time.
 type FrameReader struct {
@@ -319,10 +330,7 @@ func (fr *FrameReader) Release() { fr.r.Release() }
 
 // GoalWriter appends goals to an Arrow IPC stream.
 type GoalWriter struct {
-	bw   *bufio.Writer
-	w    *ipc.Writer
-	b    *array.RecordBuilder
-	rows int
+	batchStream
 
 	episode, goalEpisode    *array.StringBuilder
 	step, goalStep, goalOff *array.Int32Builder
@@ -334,10 +342,8 @@ type GoalWriter struct {
 
 // NewGoalWriter starts a goal stream on w.
 func NewGoalWriter(w io.Writer) *GoalWriter {
-	bw := bufio.NewWriterSize(w, 1<<20)
-	schema := schemas.GoalArrow()
-	b := array.NewRecordBuilder(memory.DefaultAllocator, schema)
-	gw := &GoalWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: b}
+	gw := &GoalWriter{batchStream: newBatchStream(w, schemas.GoalArrow(), 1<<20)}
+	b := gw.b
 	gw.episode = b.Field(0).(*array.StringBuilder)
 	gw.step = b.Field(1).(*array.Int32Builder)
 	gw.strategy = b.Field(2).(*array.Int8Builder)
@@ -370,28 +376,6 @@ func (gw *GoalWriter) Write(g *schemas.Goal) error {
 		return gw.flush()
 	}
 	return nil
-}
-
-func (gw *GoalWriter) flush() error {
-	if gw.rows == 0 {
-		return nil
-	}
-	rec := gw.b.NewRecordBatch()
-	defer rec.Release()
-	gw.rows = 0
-	return gw.w.Write(rec)
-}
-
-// Close flushes and ends the stream; it does not close the underlying writer.
-func (gw *GoalWriter) Close() error {
-	defer gw.b.Release()
-	if err := gw.flush(); err != nil {
-		return err
-	}
-	if err := gw.w.Close(); err != nil {
-		return err
-	}
-	return gw.bw.Flush()
 }
 
 // GoalReader reads goals from an Arrow IPC stream one at a time.
@@ -566,17 +550,12 @@ func (m *Merge) Err() error { return m.err }
 
 // DroppedWriter appends dropped lines to an Arrow IPC stream.
 type DroppedWriter struct {
-	bw   *bufio.Writer
-	w    *ipc.Writer
-	b    *array.RecordBuilder
-	rows int
+	batchStream
 }
 
 // NewDroppedWriter starts a quarantine stream on w.
 func NewDroppedWriter(w io.Writer) *DroppedWriter {
-	bw := bufio.NewWriterSize(w, 256<<10)
-	schema := schemas.DroppedArrow()
-	return &DroppedWriter{bw: bw, w: ipc.NewWriter(bw, ipcOptions(schema)...), b: array.NewRecordBuilder(memory.DefaultAllocator, schema)}
+	return &DroppedWriter{batchStream: newBatchStream(w, schemas.DroppedArrow(), 256<<10)}
 }
 
 // Write appends one dropped line.
@@ -605,28 +584,6 @@ func (dw *DroppedWriter) Write(d *schemas.Dropped) error {
 		return dw.flush()
 	}
 	return nil
-}
-
-func (dw *DroppedWriter) flush() error {
-	if dw.rows == 0 {
-		return nil
-	}
-	rec := dw.b.NewRecordBatch()
-	defer rec.Release()
-	dw.rows = 0
-	return dw.w.Write(rec)
-}
-
-// Close flushes and ends the stream; it does not close the underlying writer.
-func (dw *DroppedWriter) Close() error {
-	defer dw.b.Release()
-	if err := dw.flush(); err != nil {
-		return err
-	}
-	if err := dw.w.Close(); err != nil {
-		return err
-	}
-	return dw.bw.Flush()
 }
 
 // ReadDropped calls fn for every dropped line of the stream at key, in order.

@@ -328,49 +328,29 @@ const frameOverhead = 256
 
 // writeEpisodes writes episodes, in order, as one sealed work object.
 func writeEpisodes(ctx context.Context, work pipeline.Store, key string, eps [][]schemas.Frame, f32 bool) error {
-	up, err := work.Create(ctx, key)
-	if err != nil {
-		return err
-	}
-	fw := pipeline.NewFrameWriter(up, f32)
-	for _, ep := range eps {
-		for i := range ep {
-			if err := fw.Write(&ep[i]); err != nil {
-				up.Abort()
-				return fmt.Errorf("write %s: %w", key, err)
+	return storeFrames(ctx, work, key, f32, func(put func(*schemas.Frame) error) error {
+		for _, ep := range eps {
+			for i := range ep {
+				if err := put(&ep[i]); err != nil {
+					return err
+				}
 			}
 		}
-	}
-	if err := fw.Close(); err != nil {
-		up.Abort()
-		return fmt.Errorf("write %s: %w", key, err)
-	}
-	return up.Commit(false)
+		return nil
+	})
 }
 
 // copyFrames writes every frame of src to a new work object.
 func copyFrames(ctx context.Context, work pipeline.Store, key string, src pipeline.FrameSource, f32 bool) error {
-	up, err := work.Create(ctx, key)
-	if err != nil {
-		return err
-	}
-	fw := pipeline.NewFrameWriter(up, f32)
-	var f schemas.Frame
-	for src.Next(&f) {
-		if err := fw.Write(&f); err != nil {
-			up.Abort()
-			return fmt.Errorf("write %s: %w", key, err)
+	return storeFrames(ctx, work, key, f32, func(put func(*schemas.Frame) error) error {
+		var f schemas.Frame
+		for src.Next(&f) {
+			if err := put(&f); err != nil {
+				return err
+			}
 		}
-	}
-	if err := src.Err(); err != nil {
-		up.Abort()
-		return fmt.Errorf("merge into %s: %w", key, err)
-	}
-	if err := fw.Close(); err != nil {
-		up.Abort()
-		return fmt.Errorf("write %s: %w", key, err)
-	}
-	return up.Commit(false)
+		return src.Err()
+	})
 }
 
 // openMerged opens runs (each sorted by less) as one sorted source. With more

@@ -422,16 +422,27 @@ func (in *ingester) flush(ctx context.Context) error {
 
 // writeFrames writes frames as one sealed object of the work store.
 func writeFrames(ctx context.Context, work pipeline.Store, key string, frames []schemas.Frame, f32 bool) error {
+	return storeFrames(ctx, work, key, f32, func(put func(*schemas.Frame) error) error {
+		for i := range frames {
+			if err := put(&frames[i]); err != nil {
+				return err
+			}
+		}
+		return nil
+	})
+}
+
+// storeFrames writes the frames that emit hands to put as one sealed work
+// object: complete and visible on success, absent on any failure.
+func storeFrames(ctx context.Context, work pipeline.Store, key string, f32 bool, emit func(put func(*schemas.Frame) error) error) error {
 	up, err := work.Create(ctx, key)
 	if err != nil {
 		return err
 	}
 	fw := pipeline.NewFrameWriter(up, f32)
-	for i := range frames {
-		if err := fw.Write(&frames[i]); err != nil {
-			up.Abort()
-			return fmt.Errorf("write %s: %w", key, err)
-		}
+	if err := emit(fw.Write); err != nil {
+		up.Abort()
+		return fmt.Errorf("write %s: %w", key, err)
 	}
 	if err := fw.Close(); err != nil {
 		up.Abort()
