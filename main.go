@@ -62,6 +62,14 @@ type Command struct {
 	Workers  int    // for "stage": how many workers share the stage
 	JSON     bool
 	Help     bool
+	// Inspection commands: version locations (a local path or a URI), the
+	// trace query, the report's output file.
+	Versions []string
+	Source   string
+	Episode  string
+	File     string
+	Row      int64
+	Output   string
 }
 
 type commandSpec struct {
@@ -108,6 +116,25 @@ func commands() map[string]commandSpec {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.BoolVar(&c.JSON, "json", false, "print the plan as JSON")
 		}},
+		"show": {"summarise a version: sources, funnel with every drop reason, episodes and pairs, episode lengths, files", func(fs *flag.FlagSet, c *Command) {
+			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
+		}},
+		"trace": {"lineage both ways: a source to the files, episodes and rows holding its frames; an episode or a file row back to its sources and lines", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Source, "source", "", "a source object: key relative to the source root, or its full URI")
+			fs.StringVar(&c.Episode, "episode", "", "an episode id")
+			fs.StringVar(&c.File, "file", "", "a file of the version, relative to its folder (with --row)")
+			fs.Int64Var(&c.Row, "row", -1, "a 0-based row of --file")
+			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
+		}},
+		"verify": {"recompute every file's SHA-256 and rows, check the funnel and that the folder holds exactly the manifest's files", func(fs *flag.FlagSet, c *Command) {
+			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
+		}},
+		"diff": {"what changed between two versions: config keys, sources, drop counts, episodes and pairs per split, files", func(fs *flag.FlagSet, c *Command) {
+			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
+		}},
+		"report": {"write one self-contained HTML file with plots of a version", func(fs *flag.FlagSet, c *Command) {
+			fs.StringVar(&c.Output, "o", "report.html", "the HTML file to write")
+		}},
 		"demo": {"write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
 			parallel(fs, c)
@@ -132,6 +159,11 @@ Usage:
   hindcast stage NAME --config FILE [--worker I/N | --workers N]
   hindcast commit --config FILE [--version V]
   hindcast plan --config FILE [--json]
+  hindcast show VERSION [--json]
+  hindcast trace VERSION (--source KEY | --episode ID | --file PATH --row N) [--json]
+  hindcast verify VERSION [--json]
+  hindcast diff A B [--json]
+  hindcast report VERSION [-o report.html]
   hindcast demo [--dir DIR]
   hindcast bench [--frames N] [--runs K] [--peer BIN]
 
@@ -159,6 +191,11 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 	if c.Name == "stage" && len(rest) > 0 && !strings.HasPrefix(rest[0], "-") {
 		c.Stage, rest = rest[0], rest[1:]
 	}
+	// Inspection commands take their versions first: `hindcast show V --json`.
+	wantVersions := map[string]int{"show": 1, "trace": 1, "verify": 1, "diff": 2, "report": 1}[c.Name]
+	for len(c.Versions) < wantVersions && len(rest) > 0 && !strings.HasPrefix(rest[0], "-") {
+		c.Versions, rest = append(c.Versions, rest[0]), rest[1:]
+	}
 	fs.Usage = func() {
 		fmt.Fprintf(stderr, "hindcast %s: %s\n\nFlags:\n", args[0], spec.summary)
 		fs.PrintDefaults()
@@ -169,6 +206,24 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 			return c, nil
 		}
 		return nil, usageError{err}
+	}
+	for len(c.Versions) < wantVersions && fs.NArg() > 0 {
+		c.Versions = append(c.Versions, fs.Arg(0))
+		fs.Parse(fs.Args()[1:])
+	}
+	if len(c.Versions) < wantVersions {
+		return nil, usageError{fmt.Errorf("%s: want %d version location(s) (a folder or an s3:// URI)", c.Name, wantVersions)}
+	}
+	if c.Name == "trace" {
+		n := 0
+		for _, set := range []bool{c.Source != "", c.Episode != "", c.File != ""} {
+			if set {
+				n++
+			}
+		}
+		if n != 1 || (c.File != "") != (c.Row >= 0) {
+			return nil, usageError{errors.New("trace: give one of --source KEY, --episode ID, or --file PATH --row N")}
+		}
 	}
 	if fs.NArg() > 0 {
 		return nil, usageError{fmt.Errorf("%s: unexpected argument %q", c.Name, fs.Arg(0))}
@@ -220,6 +275,8 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = commitCommand(ctx, c, stdout, ui)
 	case "plan":
 		err = planCommand(ctx, c, stdout, ui)
+	case "show", "trace", "verify", "diff", "report":
+		err = inspectCommand(ctx, c, stdout)
 	case "demo":
 		err = demoCommand(ctx, c, stdout, ui)
 	case "bench":
