@@ -210,9 +210,17 @@ func (r *s3Reader) get(ctx context.Context) error {
 	if err != nil {
 		timer.Stop()
 		cancel()
-		if r.pos > 0 && r.pos >= r.end && r.end > 0 && isStatus(err, http.StatusRequestedRangeNotSatisfiable) {
-			r.body = io.NopCloser(bytes.NewReader(nil))
-			return nil
+		if r.pos > 0 && isStatus(err, http.StatusRequestedRangeNotSatisfiable) {
+			// A range at or past the end: at the end is an empty stream,
+			// as a local file gives.
+			info, serr := r.s.Stat(ctx, r.key)
+			if serr == nil && info.Size == r.pos {
+				if r.etag == "" {
+					r.etag, r.version, r.end = info.ETag, info.Version, info.Size
+				}
+				r.body = io.NopCloser(bytes.NewReader(nil))
+				return nil
+			}
 		}
 		return err
 	}
@@ -221,6 +229,7 @@ func (r *s3Reader) get(ctx context.Context) error {
 		r.version = aws.ToString(out.VersionId)
 		r.end = r.pos + aws.ToInt64(out.ContentLength)
 	}
+	timer.Stop()
 	r.body, r.cancel, r.timer = out.Body, cancel, timer
 	return nil
 }
@@ -249,9 +258,14 @@ func (r *s3Reader) Read(p []byte) (int, error) {
 				return 0, r.err
 			}
 		}
-		n, err := r.body.Read(p)
-		if n > 0 && r.timer != nil {
+		// The watchdog runs only while this read waits on the network: a
+		// consumer that pauses between reads is not a stalled connection.
+		if r.timer != nil {
 			r.timer.Reset(time.Duration(r.s.opt.Timeout))
+		}
+		n, err := r.body.Read(p)
+		if r.timer != nil {
+			r.timer.Stop()
 		}
 		r.pos += int64(n)
 		if err == nil {
@@ -311,7 +325,9 @@ func (s *S3Store) Link(ctx context.Context, from Store, fromKey, key string) err
 	if !ok || src.client != s.client && src.opt.Endpoint != s.opt.Endpoint {
 		return fmt.Errorf("link %s: not on this S3 service", JoinURI(from.URI(), fromKey))
 	}
-	source := src.bucket + "/" + (&url.URL{Path: src.prefix + fromKey}).EscapedPath()
+	// CopySource is URL-encoded; a "+" must be escaped too, or the service
+	// reads it as a space (form encoding).
+	source := src.bucket + "/" + strings.ReplaceAll((&url.URL{Path: src.prefix + fromKey}).EscapedPath(), "+", "%2B")
 	err := s.retry.Do(ctx, func(ctx context.Context) error {
 		ctx, cancel := s.attempt(ctx)
 		defer cancel()
@@ -392,8 +408,10 @@ func (u *s3Upload) sendPart() error {
 	}
 	body := u.buf
 	u.buf = make([]byte, 0, u.s.opt.PartSize)
+	u.mu.Lock()
 	num := int32(len(u.parts) + 1)
 	u.parts = append(u.parts, types.CompletedPart{PartNumber: aws.Int32(num)})
+	u.mu.Unlock()
 	u.sem <- struct{}{}
 	u.g.Go(func() error {
 		defer func() { <-u.sem }()
@@ -467,8 +485,10 @@ func (u *s3Upload) Commit(exclusive bool) error {
 // conditional write (If-None-Match: *); a store that does not support it is
 // checked with a HEAD first, and the message says the check was not atomic.
 func (u *s3Upload) put(exclusive bool) error {
+	tries := 0
 	do := func(cond bool) error {
 		return u.s.retry.Do(u.ctx, func(ctx context.Context) error {
+			tries++
 			ctx, cancel := u.s.attempt(ctx)
 			defer cancel()
 			in := &s3.PutObjectInput{Bucket: aws.String(u.s.bucket), Key: aws.String(u.s.prefix + u.key),
@@ -489,6 +509,11 @@ func (u *s3Upload) put(exclusive bool) error {
 		}
 		err = do(false)
 	}
+	if err != nil && exclusive && tries > 1 && isStatus(err, http.StatusPreconditionFailed) && u.holdsOwnBytes() {
+		// An earlier attempt stored the object but its answer was lost; the
+		// retry then met our own object. That is a success.
+		err = nil
+	}
 	if err != nil {
 		if isStatus(err, http.StatusPreconditionFailed) || isStatus(err, http.StatusConflict) && exclusive {
 			return fmt.Errorf("commit %s: %w", u.s.uriOf(u.key), ErrExists)
@@ -496,6 +521,17 @@ func (u *s3Upload) put(exclusive bool) error {
 		return fmt.Errorf("commit %s: %w", u.s.uriOf(u.key), mapS3Error(err))
 	}
 	return nil
+}
+
+// holdsOwnBytes reports whether the key now holds exactly this upload's bytes.
+func (u *s3Upload) holdsOwnBytes() bool {
+	r, err := u.s.Open(u.ctx, u.key, 0)
+	if err != nil {
+		return false
+	}
+	defer r.Close()
+	got, err := io.ReadAll(io.LimitReader(r, int64(len(u.buf))+1))
+	return err == nil && bytes.Equal(got, u.buf)
 }
 
 func (u *s3Upload) Abort() error {
@@ -549,8 +585,11 @@ func mapS3Error(err error) error {
 // resets and short bodies are; permission, missing-object and bad-request
 // answers (4xx) are not.
 func retryableS3(err error) bool {
+	// The SDK also wraps failures that got no answer (a reset, a timeout:
+	// status 0) or a cut one (status 200) in a ResponseError; only a real
+	// error status decides here.
 	var re *awshttp.ResponseError
-	if errors.As(err, &re) {
+	if errors.As(err, &re) && re.HTTPStatusCode() >= 300 {
 		code := re.HTTPStatusCode()
 		return code >= 500 || code == http.StatusTooManyRequests || code == http.StatusRequestTimeout
 	}

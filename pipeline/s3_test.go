@@ -484,10 +484,10 @@ func TestS3StoreBasics(t *testing.T) {
 		// A key that needs escaping in x-amz-copy-source (S3 API Reference,
 		// CopyObject: "The value must be URL-encoded").
 		data := s3Bytes(10, 5000)
-		r.put(t, "root/from/a b+c/é%.bin", data)
+		r.put(t, "root/from/a b/é%.bin", data)
 		dst, _ := r.store(t, "elsewhere/", StorageConfig{})
 		before := len(r.rec.requests(anyRequest))
-		if err := dst.Link(ctx, s, "from/a b+c/é%.bin", "to/copy.bin"); err != nil {
+		if err := dst.Link(ctx, s, "from/a b/é%.bin", "to/copy.bin"); err != nil {
 			t.Fatalf("Link: %v", err)
 		}
 		if got := r.get(t, "elsewhere/to/copy.bin"); !bytes.Equal(got, data) {
@@ -499,6 +499,25 @@ func TestS3StoreBasics(t *testing.T) {
 		}
 		if err := dst.Link(ctx, NewLocalStore(t.TempDir()), "x", "y"); err == nil {
 			t.Errorf("Link from a local folder succeeded; want an error (the caller copies)")
+		}
+	})
+
+	t.Run("LinkPlus", func(t *testing.T) {
+		// "+" in a key: x-amz-copy-source is URL-encoded, and a server that
+		// decodes it as a query component (versitygw does) reads "+" as a
+		// space, so a literal "+" must be sent as %2B (RFC 3986 §2.1; the
+		// "+" for space is HTML form encoding). With the twin "a b" present,
+		// a wrong decoding copies the wrong object instead of failing.
+		plus, space := s3Bytes(12, 100), s3Bytes(13, 100)
+		r.put(t, "root/plus/a+b", plus)
+		r.put(t, "root/plus/a b", space)
+		dst, _ := r.store(t, "elsewhere/", StorageConfig{})
+		err := dst.Link(ctx, s, "plus/a+b", "to/plus")
+		if err != nil {
+			t.Fatalf("Link of a key with '+': %v", err)
+		}
+		if got := r.get(t, "elsewhere/to/plus"); !bytes.Equal(got, plus) {
+			t.Errorf("Link of plus/a+b copied other bytes (those of plus/a b: %v)", bytes.Equal(got, space))
 		}
 	})
 }
@@ -671,6 +690,7 @@ func TestS3Multipart(t *testing.T) {
 		}
 		err := u.Commit(false)
 		r.fp.Set()
+		requests, retries := m.Requests.Load(), m.Retries.Load()
 		r.noSecret(t, err)
 		if err == nil {
 			t.Fatal("Commit succeeded although every UploadPart failed")
@@ -684,12 +704,17 @@ func TestS3Multipart(t *testing.T) {
 		if p := r.pendingUploads(t); len(p) != 0 {
 			t.Errorf("pending uploads after a failed Commit: %q", p)
 		}
-		// Three parts (5, 5, 1 MiB), each tried 3 times.
-		if got := r.fp.Injected()[faultproxy.Status500]; got != 9 {
-			t.Errorf("%d injected part failures, want 3 parts × 3 attempts", got)
+		// Three parts (5, 5, 1 MiB), each tried 3 times: 9 UploadParts, 6
+		// retries, plus CreateMultipartUpload and AbortMultipartUpload. The
+		// proxy may see more UploadParts than the store sends: Go's
+		// transport replays by itself a request that found its reused
+		// connection closed before anything was written (net/http,
+		// Transport), as after a 500 that did not read a 100-continue body.
+		if got := r.fp.Injected()[faultproxy.Status500]; got < 9 {
+			t.Errorf("%d injected part failures, want at least 3 parts × 3 attempts", got)
 		}
-		if got := m.Retries.Load(); got != 6 {
-			t.Errorf("%d retries, want 3 parts × 2", got)
+		if requests != 11 || retries != 6 {
+			t.Errorf("%d requests, %d retries; want 1 + 9 + 1, 3 parts × 2", requests, retries)
 		}
 	})
 }

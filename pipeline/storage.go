@@ -290,8 +290,14 @@ func (s *LocalStore) Delete(ctx context.Context, key string) error {
 }
 
 // DeletePrefix removes every object under prefix (used to clear a stage item
-// before it is rewritten).
+// before it is rewritten). A store that can remove a whole folder at once,
+// temporary files of killed writers included, does so.
 func DeletePrefix(ctx context.Context, s Store, prefix string) error {
+	if d, ok := Unwrap(s).(interface {
+		DeleteFolder(ctx context.Context, prefix string) error
+	}); ok && strings.HasSuffix(prefix, "/") {
+		return d.DeleteFolder(ctx, prefix)
+	}
 	var keys []string
 	err := s.List(ctx, prefix, func(o ObjectInfo) error { keys = append(keys, o.Key); return nil })
 	if err != nil && !errors.Is(err, ErrNotFound) {
@@ -305,6 +311,16 @@ func DeletePrefix(ctx context.Context, s Store, prefix string) error {
 	return nil
 }
 
+// DeleteFolder removes the folder of prefix (ending in "/") with everything
+// in it, including the temporary files a killed writer left, which List
+// does not show.
+func (s *LocalStore) DeleteFolder(ctx context.Context, prefix string) error {
+	if err := os.RemoveAll(s.Path(prefix)); err != nil {
+		return fmt.Errorf("delete %s: %w", JoinURI(s.URI(), prefix), err)
+	}
+	return nil
+}
+
 // Link implements Linker: a hard link publishes a local file without
 // copying it; it fails (and the caller copies) across file systems.
 func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) error {
@@ -312,20 +328,25 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	if !ok {
 		return fmt.Errorf("link %s: not a local store", JoinURI(from.URI(), fromKey))
 	}
-	dst := s.Path(key)
+	dst, orig := s.Path(key), src.Path(fromKey)
+	// Already published (a commit rerun after a crash): rename(2) of two
+	// links of one file does nothing and would leave the temporary link.
+	if a, err := os.Stat(orig); err == nil {
+		if b, err := os.Stat(dst); err == nil && os.SameFile(a, b) {
+			return nil
+		}
+	}
 	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
 		return err
 	}
 	tmp := dst + tempMarker + "link"
 	os.Remove(tmp)
-	if err := os.Link(src.Path(fromKey), tmp); err != nil {
+	if err := os.Link(orig, tmp); err != nil {
 		return err
 	}
-	if err := os.Rename(tmp, dst); err != nil {
-		os.Remove(tmp)
-		return err
-	}
-	return nil
+	err := os.Rename(tmp, dst)
+	os.Remove(tmp) // gone after a rename; there after a failed one
+	return err
 }
 
 type localUpload struct {
