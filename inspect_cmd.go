@@ -65,7 +65,21 @@ func inspectCommand(ctx context.Context, c *Command, stdout io.Writer) error {
 		if err != nil {
 			return err
 		}
-		return emit(r, r.WriteText)
+		if r.Source != nil && vs[0].Manifest.Quarantine != nil {
+			key := r.Source.Key
+			if r.Dropped, err = inspect.QuarantineLines(ctx, vs[0], func(src, _ string) bool { return src == key }, 0); err != nil {
+				return err
+			}
+		}
+		return emit(r, func(w io.Writer) error {
+			if err := r.WriteText(w); err != nil {
+				return err
+			}
+			if r.Source != nil && vs[0].Manifest.Quarantine != nil {
+				return inspect.WriteQuarantineText(w, fmt.Sprintf("dropped lines of %s (quarantine): %d", r.Source.Key, len(r.Dropped)), r.Dropped)
+			}
+			return nil
+		})
 	case "verify":
 		r, err := inspect.Verify(ctx, vs[0])
 		if err != nil {

@@ -53,8 +53,9 @@ func TestInspectCommands(t *testing.T) {
 			Dropped map[string]int64 `json:"dropped"`
 		} `json:"funnel"`
 		Sources []struct {
-			Key  string `json:"key"`
-			Kept int64  `json:"kept"`
+			Key     string           `json:"key"`
+			Kept    int64            `json:"kept"`
+			Dropped map[string]int64 `json:"dropped"`
 		} `json:"sources"`
 		Quarantine struct {
 			Rows int64 `json:"rows"`
@@ -114,6 +115,34 @@ func TestInspectCommands(t *testing.T) {
 	for _, f := range tr.Files {
 		if _, err := os.Stat(filepath.Join(v, f.Path)); err != nil {
 			t.Errorf("trace names %s, not in the version: %v", f.Path, err)
+		}
+	}
+	// A source with dropped lines: trace lists them from the quarantine,
+	// as many as the manifest counts for it.
+	var lossy string
+	var lossyDropped int64
+	for _, s := range m.Sources {
+		var n int64
+		for _, c := range s.Dropped {
+			n += c
+		}
+		if n > 0 {
+			lossy, lossyDropped = s.Key, n
+			break
+		}
+	}
+	code, out, _ = runInspect(t, "trace", v, "--source", lossy, "--json")
+	var lt struct {
+		Dropped []struct {
+			Src string `json:"src"`
+		} `json:"dropped"`
+	}
+	if err := json.Unmarshal([]byte(out), &lt); code != 0 || err != nil || int64(len(lt.Dropped)) != lossyDropped {
+		t.Errorf("trace --source %s: exit %d, %v, %d dropped lines, want %d", lossy, code, err, len(lt.Dropped), lossyDropped)
+	}
+	for _, d := range lt.Dropped {
+		if d.Src != lossy {
+			t.Errorf("trace --source %s lists a dropped line of %s", lossy, d.Src)
 		}
 	}
 	if code, _, errOut := runInspect(t, "trace", v, "--episode", "x", "--source", src); code != 2 || !strings.Contains(errOut, "one of --source") {

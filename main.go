@@ -246,6 +246,7 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 }
 
 func main() {
+	tuneGC()
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	code := Main(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	stop()
@@ -472,4 +473,18 @@ func planCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) erro
 		}
 	}
 	return nil
+}
+
+// tuneGC trades memory the pipeline does not use for less collector work:
+// a batch run holds little live data (bounded buffers) but allocates a lot,
+// so the default GOGC=100 collects far more often than needed. A soft memory
+// limit keeps the heap bounded whatever the percentage (common practice for
+// batch jobs). GOGC and GOMEMLIMIT in the environment win.
+func tuneGC() {
+	if os.Getenv("GOGC") == "" {
+		debug.SetGCPercent(400)
+	}
+	if os.Getenv("GOMEMLIMIT") == "" {
+		debug.SetMemoryLimit(768 << 20)
+	}
 }

@@ -59,6 +59,10 @@ type TraceResult struct {
 	// Cost says what the lookup read: it is meant to be a small part of the
 	// files it opened.
 	Cost TraceCost `json:"cost"`
+	// Dropped lists the source's dropped lines from the version's
+	// quarantine (source queries on a version with a quarantine; the CLI
+	// fills it).
+	Dropped []QuarantinedLine `json:"dropped,omitempty"`
 }
 
 // TraceSource is a source object's manifest entry, in short.

@@ -315,7 +315,16 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 	var reused atomic.Int64
 	g, gctx := errgroup.WithContext(ctx)
 	g.SetLimit(max(1, env.Parallel))
-	for i, it := range items {
+	// Largest items first (longest-processing-time order): the last item to
+	// start is then a small one, so workers finish together. Only the order
+	// of execution changes; results stay at their item's position.
+	order := make([]int, len(items))
+	for i := range order {
+		order[i] = i
+	}
+	sort.SliceStable(order, func(a, b int) bool { return items[order[a]].Bytes > items[order[b]].Bytes })
+	for _, i := range order {
+		it := items[i]
 		g.Go(func() error {
 			if err := gctx.Err(); err != nil {
 				return err

@@ -53,6 +53,9 @@ type IngestSummary struct {
 	// Runs lists, per partition (five-digit name), the work keys of the
 	// sorted runs holding this object's accepted frames.
 	Runs map[string][]string `json:"runs"`
+	// PartFrames counts the accepted frames per partition (the size of the
+	// episodes work it makes).
+	PartFrames map[string]int64 `json:"part_frames"`
 }
 
 // EpisodeInfo indexes one episode of a partition.

@@ -58,6 +58,42 @@ func (f *Frame) CopyFrom(g *Frame) {
 	f.Obs, f.Act, f.ImgRef, f.Img = obs, act, ref, img
 }
 
+// Floats hands out float64 slices carved from large blocks, so that holding
+// many frames (a chunk before it is sorted, episodes before they are
+// spilled) costs a few allocations instead of two per frame. A block is
+// freed by the garbage collector once no frame points into it; nothing is
+// ever reused, so no slice handed out can be overwritten.
+type Floats struct{ block []float64 }
+
+const floatsBlock = 1 << 16
+
+// Copy returns a copy of v in block memory (nil for a nil v).
+func (a *Floats) Copy(v []float64) []float64 {
+	if v == nil {
+		return nil
+	}
+	if len(a.block)+len(v) > cap(a.block) {
+		a.block = make([]float64, 0, max(floatsBlock, len(v)))
+	}
+	start := len(a.block)
+	a.block = append(a.block, v...)
+	return a.block[start:len(a.block):len(a.block)]
+}
+
+// CopyInto makes f a deep copy of g with its vectors in a's blocks: f must
+// be a fresh Frame (its own slices are dropped, not reused).
+func (a *Floats) CopyInto(f, g *Frame) {
+	*f = *g
+	f.Obs, f.Act = a.Copy(g.Obs), a.Copy(g.Act)
+	f.ImgRef, f.Img = nil, nil
+	if len(g.ImgRef) > 0 {
+		f.ImgRef = append([]string(nil), g.ImgRef...)
+		for _, b := range g.Img {
+			f.Img = append(f.Img, append([]byte(nil), b...))
+		}
+	}
+}
+
 // SameContent reports whether two frames of one unit at one t carry the same
 // content in the sense of SPEC §3.2: embodiment, obs, act, ev, task, success
 // and img as written (vectors compare after conversion to the output type,

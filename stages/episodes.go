@@ -41,6 +41,7 @@ func (Episodes) Items(ctx context.Context, env *pipeline.Env, ckey string, up ma
 	n := env.Config.Partitions
 	inputs := make([]episodesInput, n)
 	feeds := make([][]string, n)
+	frames := make([]int64, n)
 	for i, o := range objs {
 		if o.DuplicateOf != "" {
 			continue
@@ -51,13 +52,15 @@ func (Episodes) Items(ctx context.Context, env *pipeline.Env, ckey string, up ma
 				return nil, fmt.Errorf("ingest %s: bad partition %q", o.Key, name)
 			}
 			inputs[p].Runs = append(inputs[p].Runs, runs...)
+			frames[p] += o.PartFrames[name]
 			feeds[p] = append(feeds[p], o.Key, up["ingest"][i].Item.Key)
 		}
 	}
 	items := make([]pipeline.Item, n)
 	for p := range n {
 		inputs[p].Partition = p
-		items[p] = pipeline.Item{ID: "p" + pipeline.PartName(p), Key: pipeline.HashParts(ckey, p, feeds[p]), Meta: inputs[p]}
+		items[p] = pipeline.Item{ID: "p" + pipeline.PartName(p), Key: pipeline.HashParts(ckey, p, feeds[p]),
+			Bytes: frames[p] * frameBytes, Meta: inputs[p]}
 	}
 	return items, nil
 }
@@ -157,6 +160,7 @@ type segmenter struct {
 	prev    schemas.Frame // last kept frame of the unit
 	prevEnd bool
 	cur     []schemas.Frame
+	floats  schemas.Floats // vectors of the frames in cur, and of episodes emitted
 }
 
 func newSegmenter(c pipeline.EpisodeConfig, drop func(f *schemas.Frame, reason string), emit func([]schemas.Frame) error) *segmenter {
@@ -190,7 +194,7 @@ func (s *segmenter) feed(f *schemas.Frame) error {
 		}
 	}
 	s.cur = append(s.cur, schemas.Frame{})
-	s.cur[len(s.cur)-1].CopyFrom(f)
+	s.floats.CopyInto(&s.cur[len(s.cur)-1], f)
 	s.prev.CopyFrom(f)
 	s.prevEnd = f.Ev == schemas.EvEnd
 	if len(s.cur) == s.max {
@@ -320,6 +324,10 @@ func indexEpisodes(ctx context.Context, work pipeline.Store, key string) ([]pipe
 	}
 	return infos, n, nil
 }
+
+// frameBytes estimates one frame's share of a partition's work, to order
+// and report partition items by size.
+const frameBytes = 200
 
 // frameOverhead is what a buffered frame costs besides its vectors and
 // images: the struct, slice headers and allocation rounding (measured with

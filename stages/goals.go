@@ -47,7 +47,7 @@ func (Goals) Items(ctx context.Context, env *pipeline.Env, ckey string, up map[s
 		if err := json.Unmarshal(s.Summary, &sum); err != nil {
 			return nil, fmt.Errorf("episodes %s: summary: %w", s.Item.ID, err)
 		}
-		items = append(items, pipeline.Item{ID: s.Item.ID, Key: pipeline.HashParts(ckey, s.Item.Key), Meta: sum})
+		items = append(items, pipeline.Item{ID: s.Item.ID, Key: pipeline.HashParts(ckey, s.Item.Key), Bytes: sum.Frames * frameBytes, Meta: sum})
 	}
 	return items, nil
 }

@@ -97,7 +97,8 @@ func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (a
 	in := &ingester{
 		env: env, obj: obj, dir: pipeline.ItemDir(st.Name(), it.Key), uri: uri,
 		sum: pipeline.IngestSummary{Key: obj.Key, ETag: obj.ETag, Version: obj.Version,
-			Dropped: map[string]int64{}, DroppedByUnit: map[string]map[string]int64{}, Runs: map[string][]string{}},
+			Dropped: map[string]int64{}, DroppedByUnit: map[string]map[string]int64{}, Runs: map[string][]string{},
+			PartFrames: map[string]int64{}},
 		parts: map[string]int{},
 	}
 	in.q = newQuarantine(ctx, env, in.dir+"quarantine.arrow")
@@ -123,6 +124,7 @@ type ingester struct {
 	chunk     []schemas.Frame
 	chunkSize int
 	runs      int
+	floats    schemas.Floats
 
 	// The line being decided, for the quarantine.
 	q       *quarantine
@@ -358,7 +360,7 @@ func isBlank(b []byte) bool {
 // chunk is full.
 func (in *ingester) add(ctx context.Context, f *schemas.Frame) error {
 	in.chunk = append(in.chunk, schemas.Frame{})
-	in.chunk[len(in.chunk)-1].CopyFrom(f)
+	in.floats.CopyInto(&in.chunk[len(in.chunk)-1], f)
 	in.chunkSize += frameOverhead + 8*(len(f.Obs)+len(f.Act)) + len(f.Task)
 	for _, b := range f.Img {
 		in.chunkSize += len(b)
@@ -412,6 +414,7 @@ func (in *ingester) flush(ctx context.Context) error {
 			return err
 		}
 		in.sum.Runs[name] = append(in.sum.Runs[name], key)
+		in.sum.PartFrames[name] += int64(j - i)
 		i = j
 	}
 	in.runs++

@@ -73,7 +73,8 @@ func (*Pack) Items(ctx context.Context, env *pipeline.Env, ckey string, up map[s
 		if err := json.Unmarshal(goals[i].Summary, &in.Goals); err != nil {
 			return nil, fmt.Errorf("goals %s: summary: %w", goals[i].Item.ID, err)
 		}
-		items[i] = pipeline.Item{ID: eps[i].Item.ID, Key: pipeline.HashParts(ckey, eps[i].Item.Key, goals[i].Item.Key), Meta: in}
+		items[i] = pipeline.Item{ID: eps[i].Item.ID, Key: pipeline.HashParts(ckey, eps[i].Item.Key, goals[i].Item.Key),
+			Bytes: in.Episodes.Frames * frameBytes, Meta: in}
 	}
 	return items, nil
 }
@@ -277,6 +278,12 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			// locate an episode; the bloom filter answers "not in this
 			// file" without reading a page (for lineage queries).
 			parquet.BloomFilters(parquet.SplitBlockFilter(10, "episode")),
+			// Per-page min/max of vector elements finds nothing a reader
+			// asks for and costs a pass over every float; keys keep theirs.
+			parquet.SkipPageBounds("obs", "list", "element"),
+			parquet.SkipPageBounds("act", "list", "element"),
+			parquet.SkipPageBounds("next_obs", "list", "element"),
+			parquet.SkipPageBounds("goal", "list", "element"),
 		}
 	}
 	open := func(table, split string) (*shard, error) {
