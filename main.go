@@ -485,6 +485,6 @@ func tuneGC() {
 		debug.SetGCPercent(400)
 	}
 	if os.Getenv("GOMEMLIMIT") == "" {
-		debug.SetMemoryLimit(768 << 20)
+		debug.SetMemoryLimit(512 << 20)
 	}
 }
