@@ -162,49 +162,6 @@ func TestCacheEpisodesChangeRerunsFromEpisodes(t *testing.T) {
 	}
 }
 
-// cacheBenchConfig is a config for the benchmark fleet's two embodiments
-// (fleet/bench.go: picker6 10/7, cart2 5/2, values within ±10) with 16
-// partitions, so that a few new units leave most partitions untouched.
-func cacheBenchConfig(work, output string) string {
-	return `dataset: cache-fleet
-source:
-  uri: logs
-work: ` + work + `
-output: ` + output + `
-partitions: 16
-seed: 11
-embodiments:
-  picker6:
-    obs: 10
-    act: 7
-    obs_low: -10
-    obs_high: 10
-    goal_dims: [7, 8, 9]
-    goal_tolerance: 0.03
-  cart2:
-    obs: 5
-    act: 2
-    obs_low: -10
-    obs_high: 10
-    goal_dims: [0, 1]
-    goal_tolerance: 0.25
-episodes:
-  max_gap: 500ms
-  min_steps: 10
-  max_steps: 500
-goals:
-  future: 2
-  geometric: 1
-  final: 1
-  negative: 1
-  gamma: 0.99
-splits: {train: 0.8, val: 0.1, test: 0.1}
-float: float32
-parquet:
-  compression: zstd
-`
-}
-
 // cacheDims is each bench embodiment's (obs, act) lengths.
 var cacheDims = map[string][2]int{"picker6": {10, 7}, "cart2": {5, 2}}
 
@@ -359,7 +316,7 @@ func TestCacheNewObjects(t *testing.T) {
 	const partitions = 16
 	old := clSourceObjects(t, logs)
 	cfg := filepath.Join(dir, "c.yaml")
-	clWrite(t, cfg, []byte(cacheBenchConfig("work", "out")))
+	clWrite(t, cfg, []byte(benchConfigAt(t, "cache-fleet", "work", "out", 16, 11)))
 	work, out := filepath.Join(dir, "work"), filepath.Join(dir, "out")
 
 	r1 := clMustRun(t, bin, nil, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
@@ -464,9 +421,32 @@ func TestCacheNewObjects(t *testing.T) {
 	}
 
 	fresh := filepath.Join(dir, "fresh.yaml")
-	clWrite(t, fresh, []byte(cacheBenchConfig("fresh-work", "fresh-out")))
+	clWrite(t, fresh, []byte(benchConfigAt(t, "cache-fleet", "fresh-work", "fresh-out", 16, 11)))
 	r3 := clMustRun(t, bin, nil, "run", "--config", fresh, "--version", "v3", "--parallel", "2")
 	v3 := clLocalVersion(t, filepath.Join(dir, "fresh-out"), "cache-fleet", "v3")
 	cacheCheckRun(t, r3, v3, cacheAll(len(old)+len(news), partitions, false))
 	clSameContent(t, v3, v2)
+}
+
+// benchConfigAt is the bench command's config for the benchmark fleet
+// (bench.go: picker6 and cart2, values within ±10) with its own dataset,
+// work, output, partitions and seed, and one negative goal per step so the
+// scratch-file path of the goals stage runs too.
+func benchConfigAt(t *testing.T, dataset, work, output string, partitions int, seed int64) string {
+	t.Helper()
+	out := benchConfig
+	for _, r := range [][2]string{
+		{"dataset: bench-fleet\n", "dataset: " + dataset + "\n"},
+		{"work: work\n", "work: " + work + "\n"},
+		{"output: datasets\n", "output: " + output + "\n"},
+		{"partitions: 8\n", fmt.Sprintf("partitions: %d\n", partitions)},
+		{"seed: 7\n", fmt.Sprintf("seed: %d\n", seed)},
+		{"negative: 0\n", "negative: 1\n"},
+	} {
+		if strings.Count(out, r[0]) != 1 {
+			t.Fatalf("bench config: %q is not there exactly once", r[0])
+		}
+		out = strings.Replace(out, r[0], r[1], 1)
+	}
+	return out
 }

@@ -24,48 +24,6 @@ import (
 	"hindcast/fleet"
 )
 
-// crashConfig is a config for the benchmark fleet (fleet/bench.go's two
-// embodiments, values within ±10), 8 partitions.
-func crashConfig(work, output string) string {
-	return `dataset: crash-fleet
-source:
-  uri: logs
-work: ` + work + `
-output: ` + output + `
-partitions: 8
-seed: 5
-embodiments:
-  picker6:
-    obs: 10
-    act: 7
-    obs_low: -10
-    obs_high: 10
-    goal_dims: [7, 8, 9]
-    goal_tolerance: 0.03
-  cart2:
-    obs: 5
-    act: 2
-    obs_low: -10
-    obs_high: 10
-    goal_dims: [0, 1]
-    goal_tolerance: 0.25
-episodes:
-  max_gap: 500ms
-  min_steps: 10
-  max_steps: 500
-goals:
-  future: 2
-  geometric: 1
-  final: 1
-  negative: 1
-  gamma: 0.99
-splits: {train: 0.8, val: 0.1, test: 0.1}
-float: float32
-parquet:
-  compression: zstd
-`
-}
-
 // crashKill starts a run and sends it SIGKILL after delay, unless it ended
 // first; it reports whether the kill is what ended it.
 func crashKill(t *testing.T, ctx context.Context, bin string, delay time.Duration, args ...string) (killed bool) {
@@ -136,7 +94,7 @@ func TestCrashKillAndRerun(t *testing.T) {
 	}
 	const dataset, version = "crash-fleet", "v1"
 	clean := filepath.Join(dir, "clean.yaml")
-	clWrite(t, clean, []byte(crashConfig("clean-work", "clean-out")))
+	clWrite(t, clean, []byte(benchConfigAt(t, "crash-fleet", "clean-work", "clean-out", 8, 5)))
 	began := time.Now()
 	clMustRun(t, bin, nil, "run", "--config", clean, "--version", version, "--parallel", "2")
 	length := time.Since(began)
@@ -156,7 +114,7 @@ func TestCrashKillAndRerun(t *testing.T) {
 		delay := time.Duration((float64(i) + rng.Float64()) / kills * float64(length))
 		name := fmt.Sprintf("k%d", i)
 		cfg := filepath.Join(dir, name+".yaml")
-		clWrite(t, cfg, []byte(crashConfig(name+"-work", name+"-out")))
+		clWrite(t, cfg, []byte(benchConfigAt(t, "crash-fleet", name+"-work", name+"-out", 8, 5)))
 		work, out := filepath.Join(dir, name+"-work"), filepath.Join(dir, name+"-out")
 		manifest := filepath.Join(out, dataset, version, "manifest.json")
 
@@ -194,7 +152,7 @@ func crashSmallRun(t *testing.T, bin, dir string) (string, clVersion) {
 		t.Fatal(err)
 	}
 	cfg := filepath.Join(dir, "c.yaml")
-	clWrite(t, cfg, []byte(crashConfig("work", "out")))
+	clWrite(t, cfg, []byte(benchConfigAt(t, "crash-fleet", "work", "out", 8, 5)))
 	clMustRun(t, bin, nil, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
 	return cfg, clLocalVersion(t, filepath.Join(dir, "out"), "crash-fleet", "v1")
 }

@@ -232,14 +232,13 @@ func EpisodeID(unit string, t int64) string { return unit + "-" + strconv.Format
 // episodeSink collects finished episodes, spills them as runs sorted by id
 // when the buffer is full, and merges the runs into one file at the end.
 type episodeSink struct {
-	ctx   context.Context
-	work  pipeline.Store
-	dir   string
-	buf   [][]schemas.Frame
-	size  int
-	runs  []string
-	infos []pipeline.EpisodeInfo
-	f32   bool
+	ctx  context.Context
+	work pipeline.Store
+	dir  string
+	buf  [][]schemas.Frame
+	size int
+	runs []string
+	f32  bool
 }
 
 func (o *episodeSink) add(ep []schemas.Frame) error {

@@ -446,7 +446,7 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		abortAll()
 		return nil, fmt.Errorf("goal for unknown episode %s", g.Episode)
 	}
-	for _, k := range sortedShardKeys(shards) {
+	for _, k := range sortedPairKeys(shards) {
 		s := shards[k]
 		var err error
 		if s.frames != nil {
@@ -468,7 +468,7 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		}
 		sum.Files = append(sum.Files, s.file)
 	}
-	for _, k := range sortedCountKeys(counts) {
+	for _, k := range sortedPairKeys(counts) {
 		sum.Counts = append(sum.Counts, *counts[k])
 	}
 	return sum, nil
@@ -502,21 +502,9 @@ func addMoments(obs, act map[string]*pipeline.Moments, ep []schemas.Frame) {
 	}
 }
 
-func sortedShardKeys(m map[[2]string]*shard) [][2]string {
-	keys := make([][2]string, 0, len(m))
-	for k := range m {
-		keys = append(keys, k)
-	}
-	sort.Slice(keys, func(i, j int) bool {
-		if keys[i][0] != keys[j][0] {
-			return keys[i][0] < keys[j][0]
-		}
-		return keys[i][1] < keys[j][1]
-	})
-	return keys
-}
-
-func sortedCountKeys(m map[[2]string]*pipeline.Count) [][2]string {
+// sortedPairKeys orders (table or embodiment, split) keys, so files and
+// counts come out in the same order whatever the map's.
+func sortedPairKeys[V any](m map[[2]string]V) [][2]string {
 	keys := make([][2]string, 0, len(m))
 	for k := range m {
 		keys = append(keys, k)
