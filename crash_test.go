@@ -158,20 +158,26 @@ func crashSmallRun(t *testing.T, bin, dir string) (string, clVersion) {
 }
 
 // TestCrashCommitKilledBeforeManifest is the kill that lands in a commit
-// after every shard was published and before manifest.json was written
+// after every shard was published and before manifest.json was in place
 // (Commit publishes the files, then the manifest): made here by removing the
-// manifest of a finished run, which leaves exactly that state. The rerun with
+// manifest of a finished run and adding what a kill leaves. The rerun with
 // the same version must succeed and leave the folder holding exactly the
-// manifest's files.
+// manifest's files, no temporary file included.
 func TestCrashCommitKilledBeforeManifest(t *testing.T) {
 	bin := buildHindcast(t)
 	dir := t.TempDir()
 	cfg, want := crashSmallRun(t, bin, dir)
 	want.where = "the first commit of v1"
 	out := filepath.Join(dir, "out")
-	if err := os.Remove(filepath.Join(out, "crash-fleet", "v1", "manifest.json")); err != nil {
+	folder := filepath.Join(out, "crash-fleet", "v1")
+	if err := os.Remove(filepath.Join(folder, "manifest.json")); err != nil {
 		t.Fatal(err)
 	}
+	// What else a killed commit can leave: its manifest half written (the
+	// store's temporary file), and a shard that a run of another config had
+	// published there before it was killed.
+	clWrite(t, filepath.Join(folder, "manifest.json.hindcast-tmp-77"), []byte(`{"format": 1, "dat`))
+	clWrite(t, filepath.Join(folder, "pairs", "split=train", "part-99999.parquet"), []byte("PAR1 of another run"))
 	r := clRun(t, bin, nil, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
 	if r.code != 0 {
 		t.Fatalf("a version folder without manifest.json is not a version; want the rerun to succeed:\n%s", r)

@@ -44,6 +44,13 @@ func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) erro
 	} else if !errors.Is(err, ErrNotFound) {
 		return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), err)
 	}
+	// A folder without manifest.json is not a version (SPEC §4), but a
+	// commit killed part way leaves one: shards, a half-written manifest, on
+	// S3 pending multipart parts. Clear it, so that the version folder ends
+	// up holding exactly its manifest's files.
+	if err := DeletePrefix(ctx, out, prefix); err != nil {
+		return fmt.Errorf("commit %s: clear what an unfinished commit left: %w", JoinURI(out.URI(), prefix), err)
+	}
 	for _, s := range res.Sealed[StagePack] {
 		var p PackSummary
 		if err := json.Unmarshal(s.Summary, &p); err != nil {

@@ -318,6 +318,57 @@ func (s *S3Store) Delete(ctx context.Context, key string) error {
 	return nil
 }
 
+// DeleteFolder removes every object under prefix and aborts the multipart
+// uploads still pending there: a writer killed mid-upload cannot abort its
+// own, and its parts are invisible to List but stored (and billed) until
+// aborted. DeletePrefix calls it to clear a stage item or an unfinished
+// version folder.
+func (s *S3Store) DeleteFolder(ctx context.Context, prefix string) error {
+	var keys []string
+	if err := s.List(ctx, prefix, func(o ObjectInfo) error { keys = append(keys, o.Key); return nil }); err != nil && !errors.Is(err, ErrNotFound) {
+		return err
+	}
+	for _, k := range keys {
+		if err := s.Delete(ctx, k); err != nil {
+			return err
+		}
+	}
+	var keyMarker, idMarker *string
+	for {
+		var out *s3.ListMultipartUploadsOutput
+		err := s.retry.Do(ctx, func(ctx context.Context) error {
+			ctx, cancel := s.attempt(ctx)
+			defer cancel()
+			var err error
+			out, err = s.client.ListMultipartUploads(ctx, &s3.ListMultipartUploadsInput{
+				Bucket: aws.String(s.bucket), Prefix: aws.String(s.prefix + prefix),
+				KeyMarker: keyMarker, UploadIdMarker: idMarker,
+			})
+			return err
+		})
+		if err != nil {
+			return fmt.Errorf("list pending uploads %s: %w", s.uriOf(prefix), mapS3Error(err))
+		}
+		for _, up := range out.Uploads {
+			err := s.retry.Do(ctx, func(ctx context.Context) error {
+				ctx, cancel := s.attempt(ctx)
+				defer cancel()
+				_, err := s.client.AbortMultipartUpload(ctx, &s3.AbortMultipartUploadInput{
+					Bucket: aws.String(s.bucket), Key: up.Key, UploadId: up.UploadId})
+				return err
+			})
+			// Gone meanwhile (aborted or completed by its writer) is fine.
+			if err != nil && !isStatus(err, http.StatusNotFound) {
+				return fmt.Errorf("abort pending upload s3://%s/%s: %w", s.bucket, aws.ToString(up.Key), mapS3Error(err))
+			}
+		}
+		if !aws.ToBool(out.IsTruncated) || (out.NextKeyMarker == nil && out.NextUploadIdMarker == nil) {
+			return nil
+		}
+		keyMarker, idMarker = out.NextKeyMarker, out.NextUploadIdMarker
+	}
+}
+
 // Link implements Linker with a server-side copy, when both stores are on
 // the same S3 service (objects up to 5 GiB, CopyObject's limit).
 func (s *S3Store) Link(ctx context.Context, from Store, fromKey, key string) error {

@@ -681,6 +681,48 @@ func TestS3Multipart(t *testing.T) {
 		}
 	})
 
+	// A writer killed mid-upload cannot abort its own upload: its parts stay
+	// pending on the server. Clearing the folder (what a stage item's redo
+	// and a commit over an unfinished version do) aborts them, and only
+	// those under its prefix.
+	t.Run("ClearedFolderAbortsKilledUploads", func(t *testing.T) {
+		s, _ := r.store(t, "mp/", StorageConfig{})
+		for _, key := range []string{"mp/killed/a.bin", "mp/killed/sub/b.bin", "mp/kept/c.bin"} {
+			out, err := r.direct.CreateMultipartUpload(ctx, &s3.CreateMultipartUploadInput{Bucket: aws.String(r.bucket), Key: aws.String(key)})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if _, err := r.direct.UploadPart(ctx, &s3.UploadPartInput{
+				Bucket: aws.String(r.bucket), Key: aws.String(key), UploadId: out.UploadId,
+				PartNumber: aws.Int32(1), Body: bytes.NewReader(s3Bytes(26, 5*mib)),
+			}); err != nil {
+				t.Fatal(err)
+			}
+		}
+		if err := Put(ctx, s, "killed/done.bin", []byte("finished"), false); err != nil {
+			t.Fatal(err)
+		}
+		if p := r.pendingUploads(t); len(p) != 3 {
+			t.Fatalf("%d pending uploads before clearing, want the 3 started: %q", len(p), p)
+		}
+		if err := DeletePrefix(ctx, s, "killed/"); err != nil {
+			t.Fatal(err)
+		}
+		p := r.pendingUploads(t)
+		if len(p) != 1 || !strings.HasPrefix(p[0], "mp/kept/c.bin ") {
+			t.Errorf("pending uploads after clearing mp/killed/: %q, want only mp/kept/c.bin's", p)
+		}
+		if _, err := s.Stat(ctx, "killed/done.bin"); !errors.Is(err, ErrNotFound) {
+			t.Errorf("Stat of an object in the cleared folder: %v, want ErrNotFound", err)
+		}
+		if err := DeletePrefix(ctx, s, "kept/"); err != nil {
+			t.Fatal(err)
+		}
+		if p := r.pendingUploads(t); len(p) != 0 {
+			t.Errorf("pending uploads after clearing mp/kept/ too: %q", p)
+		}
+	})
+
 	t.Run("PartFailsForGood", func(t *testing.T) {
 		s, m := r.store(t, "mp/", StorageConfig{PartSize: 5 * mib, MaxConcurrency: 2, Attempts: 3})
 		u, _ := s.Create(ctx, "failed.bin")
