@@ -50,7 +50,9 @@ type TraceResult struct {
 	Source *TraceSource `json:"source,omitempty"`
 	// Row is the queried row (file + row queries only).
 	Row *TraceRow `json:"row,omitempty"`
-	// Files lists every shard holding rows of the answer, by path.
+	// Files lists every shard holding rows of the answer, by path. For a
+	// source, its frames rows and every pairs row holding one of its
+	// frames as step, next step or goal.
 	Files []TraceFile `json:"files"`
 	// Episodes lists the episodes of the answer, by id, with the source
 	// object and line of each of their steps (for a source query, only the
@@ -197,6 +199,17 @@ type trConfig struct {
 	Partitions int                  `json:"partitions"`
 	Splits     pipeline.SplitConfig `json:"splits"`
 	SplitBy    string               `json:"split_by"`
+	Goals      struct {
+		// Negative is nil when the manifest's config does not say.
+		Negative *int `json:"negative"`
+	} `json:"goals"`
+}
+
+// negatives reports whether the version may hold negative goals: unless its
+// config says there are none, a lookup must expect them.
+func (t *trTracer) negatives() bool {
+	n := t.cfg.Goals.Negative
+	return n == nil || *n > 0
 }
 
 func (c trConfig) usable() bool {
@@ -317,6 +330,12 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 		}
 	}
 	episodes := map[[2]string]*TraceEpisode{}
+	// The source's frames: its steps by episode id (an episode is in one
+	// frames shard, so each set is whole once its shard is read), and the
+	// partitions that hold them.
+	steps := map[string]map[int32]bool{}
+	parts := map[int]bool{}
+	pairs := trPairRows{}
 	for _, path := range paths {
 		tf, err := t.file(path)
 		if err != nil {
@@ -340,20 +359,26 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 		}
 		ids := map[string]bool{}
 		for i := range hits.rows {
-			id, unit := cols[0][i].s, cols[1][i].s
+			id, unit, step := cols[0][i].s, cols[1][i].s, int32(cols[2][i].i)
 			ids[id] = true
+			if steps[id] == nil {
+				steps[id] = map[int32]bool{}
+			}
+			steps[id][step] = true
 			ep := episodes[[2]string{id, unit}]
 			if ep == nil {
 				ep = &TraceEpisode{ID: id, Unit: unit, Split: tf.entry.Split, Partition: tf.entry.Partition}
 				episodes[[2]string{id, unit}] = ep
 			}
-			ep.Steps = append(ep.Steps, TraceStep{Step: int32(cols[2][i].i), Src: key, SrcLine: cols[3][i].i})
+			ep.Steps = append(ep.Steps, TraceStep{Step: step, Src: key, SrcLine: cols[3][i].i})
 		}
 		res.Files = append(res.Files, tf.answer(hits.rows, ids))
+		parts[tf.entry.Partition] = true
 
-		// The pairs of those steps: the same episodes, in the pairs shard of
-		// the same split and partition, found by the episode column's
-		// statistics; of their rows, those whose step came from this source.
+		// The pairs of those episodes, in the pairs shard of the same split
+		// and partition, found by the episode column's statistics: of
+		// their rows, those whose step, next step (next_obs) or goal is a
+		// frame of this source.
 		pe, ok := t.pairsOf(tf.entry)
 		if !ok {
 			continue
@@ -372,27 +397,82 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 		if err != nil {
 			return err
 		}
-		srcs, err := pf.readRows(phits.rows, "src")
+		pcols, err := pf.readRows(phits.rows, "step", "goal_episode", "goal_step")
 		if err != nil {
 			return err
 		}
-		var rows []int64
-		pids := map[string]bool{}
 		for i, r := range phits.rows {
-			if srcs[0][i].s == key {
-				rows = append(rows, r)
-				pids[phits.vals[i]] = true
+			own, step := steps[phits.vals[i]], int32(pcols[0][i].i)
+			if own[step] || own[step+1] || steps[pcols[1][i].s][int32(pcols[2][i].i)] {
+				pairs.add(pe.Path, r, phits.vals[i])
 			}
 		}
-		if len(rows) > 0 {
-			res.Files = append(res.Files, pf.answer(rows, pids))
+	}
+	// Negative goals are frames of another episode of the same partition,
+	// maybe of another split (SPEC §3.3): the rows that took one of this
+	// source's frames as theirs are found by the goal_episode column of
+	// every pairs shard of those partitions. That column is not sorted, so
+	// this reads most of it; versions made without negatives skip it.
+	if len(steps) > 0 && t.negatives() {
+		sorted := trSortedKeys(steps)
+		admit := trAdmitAny(sorted)
+		for _, f := range t.v.Manifest.Files {
+			if f.Table != "pairs" || !parts[f.Partition] {
+				continue
+			}
+			pf, err := t.file(f.Path)
+			if err != nil {
+				return err
+			}
+			groups, err := pf.groups("goal_episode", admit, nil)
+			if err != nil {
+				return err
+			}
+			hits, err := pf.find(groups, "goal_episode", admit, func(s []byte) bool { return steps[string(s)] != nil }, "")
+			if err != nil {
+				return err
+			}
+			cols, err := pf.readRows(hits.rows, "goal_step", "episode")
+			if err != nil {
+				return err
+			}
+			for i, r := range hits.rows {
+				if steps[hits.vals[i]][int32(cols[0][i].i)] {
+					pairs.add(f.Path, r, cols[1][i].s)
+				}
+			}
 		}
+	}
+	for path, rows := range pairs {
+		tf, err := t.file(path)
+		if err != nil {
+			return err
+		}
+		ids := map[string]bool{}
+		sorted := make([]int64, 0, len(rows))
+		for r, id := range rows {
+			sorted = append(sorted, r)
+			ids[id] = true
+		}
+		slices.Sort(sorted)
+		res.Files = append(res.Files, tf.answer(sorted, ids))
 	}
 	for _, ep := range episodes {
 		sort.Slice(ep.Steps, func(i, j int) bool { return ep.Steps[i].Step < ep.Steps[j].Step })
 		res.Episodes = append(res.Episodes, *ep)
 	}
 	return nil
+}
+
+// trPairRows are pairs rows found for an answer: by shard path, each row
+// with its episode id.
+type trPairRows map[string]map[int64]string
+
+func (p trPairRows) add(path string, row int64, episode string) {
+	if p[path] == nil {
+		p[path] = map[int64]string{}
+	}
+	p[path][row] = episode
 }
 
 // ---- episode → files, rows, source lines
@@ -725,20 +805,18 @@ func (tf *trFile) find(groups []int, name string, admit trAdmit, match func([]by
 		if err != nil {
 			return h, err
 		}
-		for _, sp := range spans {
-			err := tf.read(g, c, sp[0], sp[1], func(row int64, v parquet.Value) bool {
-				s := v.ByteArray()
-				if match(s) {
-					h.rows = append(h.rows, row)
-					h.vals = append(h.vals, string(s))
-				} else if last != "" && string(s) > last {
-					done = true
-				}
-				return !done
-			})
-			if err != nil || done {
-				return h, err
+		err = tf.readRuns(g, c, spans, func(row int64, v parquet.Value) bool {
+			s := v.ByteArray()
+			if match(s) {
+				h.rows = append(h.rows, row)
+				h.vals = append(h.vals, string(s))
+			} else if last != "" && string(s) > last {
+				done = true
 			}
+			return !done
+		})
+		if err != nil || done {
+			return h, err
 		}
 	}
 	return h, nil
@@ -780,55 +858,77 @@ func (tf *trFile) spans(g, c int, admit trAdmit) ([][2]int64, error) {
 	return out, nil
 }
 
-// read calls fn with each value of flat column c for rows [from, to) of
-// row group g (relative to it), with the row's index in the file, until fn
-// returns false. Byte array values are only valid during the call.
-func (tf *trFile) read(g, c int, from, to int64, fn func(row int64, v parquet.Value) bool) error {
-	if from >= to {
+// readRuns calls fn with each value of flat column c at the rows of runs
+// (half-open, sorted, disjoint, relative to row group g), with the row's
+// index in the file, until fn returns false. Byte array values are only
+// valid during the call. One page reader serves every run: in a chunk with
+// a page index, parquet-go's SeekToRow stays on the page it has and keeps
+// the dictionary it read, so scattered rows cost the pages that hold them
+// rather than a fetch each; a chunk without one (small, likely one page)
+// is read once from the first wanted row to the last.
+func (tf *trFile) readRuns(g, c int, runs [][2]int64, fn func(row int64, v parquet.Value) bool) error {
+	if len(runs) == 0 {
 		return nil
 	}
 	chunk := tf.f.RowGroups()[g].ColumnChunks()[c]
-	if from > 0 && tf.f.Metadata().RowGroups[g].Columns[c].MetaData.TotalCompressedSize >= trIndexMin {
-		chunk.OffsetIndex() // lets the seek below jump to the page instead of decoding those before it
+	indexed := false
+	if tf.f.Metadata().RowGroups[g].Columns[c].MetaData.TotalCompressedSize >= trIndexMin {
+		_, err := chunk.OffsetIndex() // lets a seek jump to a page instead of decoding those before it
+		indexed = err == nil
 	}
 	pages := chunk.Pages()
 	defer pages.Close()
-	// From the chunk's start, its dictionary page comes first in the same
-	// read; a seek, even to row 0, skips it and fetches it again after.
-	if from > 0 {
-		if err := pages.SeekToRow(from); err != nil {
-			return fmt.Errorf("%s: row group %d: seek to row %d: %w", tf.entry.Path, g, from, err)
-		}
-	}
-	buf := make([]parquet.Value, min(to-from, 1024))
-	row := from
-	for row < to {
-		page, err := pages.ReadPage()
-		if err != nil {
-			if err == io.EOF {
-				err = io.ErrUnexpectedEOF
+	buf := make([]parquet.Value, 1024)
+	var vr parquet.ValueReader
+	row := int64(0) // the row of the next value to read
+	// next reads n values from row on, passing them to fn when emit.
+	next := func(n int64, emit bool) (bool, error) {
+		for n > 0 {
+			if vr == nil {
+				page, err := pages.ReadPage()
+				if err != nil {
+					if err == io.EOF {
+						err = io.ErrUnexpectedEOF
+					}
+					return false, fmt.Errorf("%s: row group %d, column %d at row %d: %w", tf.entry.Path, g, c, row, err)
+				}
+				vr = page.Values()
 			}
-			return fmt.Errorf("%s: row group %d, column %d at row %d: %w", tf.entry.Path, g, c, row, err)
-		}
-		vr := page.Values()
-		for row < to {
-			n, err := vr.ReadValues(buf[:min(int64(len(buf)), to-row)])
-			for _, v := range buf[:n] {
-				if !fn(tf.starts[g]+row, v) {
-					parquet.Release(page)
-					return nil
+			k, err := vr.ReadValues(buf[:min(n, int64(len(buf)))])
+			for _, v := range buf[:k] {
+				if emit && !fn(tf.starts[g]+row, v) {
+					return false, nil
 				}
 				row++
 			}
-			if err == io.EOF || n == 0 && err == nil {
-				break
-			}
-			if err != nil {
-				parquet.Release(page)
-				return fmt.Errorf("%s: row group %d, column %d at row %d: %w", tf.entry.Path, g, c, row, err)
+			n -= int64(k)
+			if err == io.EOF || k == 0 && err == nil {
+				vr = nil // on to the next page
+			} else if err != nil {
+				return false, fmt.Errorf("%s: row group %d, column %d at row %d: %w", tf.entry.Path, g, c, row, err)
 			}
 		}
-		parquet.Release(page)
+		return true, nil
+	}
+	for _, run := range runs {
+		from, to := run[0], run[1]
+		if from >= to {
+			continue
+		}
+		// From the chunk's start, its dictionary page comes first in the
+		// same read; a seek, even to row 0, skips it and fetches it after.
+		if from != row && (indexed || row == 0) {
+			if err := pages.SeekToRow(from); err != nil {
+				return fmt.Errorf("%s: row group %d: seek to row %d: %w", tf.entry.Path, g, from, err)
+			}
+			vr, row = nil, from
+		}
+		if more, err := next(from-row, false); err != nil || !more {
+			return err
+		}
+		if more, err := next(to-from, true); err != nil || !more {
+			return err
+		}
 	}
 	return nil
 }
@@ -843,27 +943,38 @@ func (tf *trFile) readRows(rows []int64, names ...string) ([][]trVal, error) {
 			return nil, err
 		}
 		vals := make([]trVal, 0, len(rows))
+		add := func(_ int64, v parquet.Value) bool {
+			switch v.Kind() {
+			case parquet.ByteArray:
+				vals = append(vals, trVal{s: string(v.ByteArray())})
+			case parquet.Int32:
+				vals = append(vals, trVal{i: int64(v.Int32())})
+			default:
+				vals = append(vals, trVal{i: v.Int64()})
+			}
+			return true
+		}
+		// The runs of rows, cut at row-group bounds, one group at a time.
+		var (
+			g    = -1
+			runs [][2]int64
+		)
 		for _, run := range trRuns(rows) {
-			// Read a run row group by row group.
 			for start := run[0]; start < run[1]; {
-				g := sort.Search(len(tf.starts), func(k int) bool { return tf.starts[k] > start }) - 1
-				end := min(run[1], tf.starts[g+1])
-				err := tf.read(g, c, start-tf.starts[g], end-tf.starts[g], func(_ int64, v parquet.Value) bool {
-					switch v.Kind() {
-					case parquet.ByteArray:
-						vals = append(vals, trVal{s: string(v.ByteArray())})
-					case parquet.Int32:
-						vals = append(vals, trVal{i: int64(v.Int32())})
-					default:
-						vals = append(vals, trVal{i: v.Int64()})
+				at := sort.Search(len(tf.starts), func(k int) bool { return tf.starts[k] > start }) - 1
+				if at != g {
+					if err := tf.readRuns(g, c, runs, add); err != nil {
+						return nil, err
 					}
-					return true
-				})
-				if err != nil {
-					return nil, err
+					g, runs = at, runs[:0]
 				}
+				end := min(run[1], tf.starts[g+1])
+				runs = append(runs, [2]int64{start - tf.starts[g], end - tf.starts[g]})
 				start = end
 			}
+		}
+		if err := tf.readRuns(g, c, runs, add); err != nil {
+			return nil, err
 		}
 		if len(vals) != len(rows) {
 			return nil, fmt.Errorf("%s: column %s: read %d values for %d rows", tf.entry.Path, name, len(vals), len(rows))
@@ -893,7 +1004,7 @@ func trRuns(rows []int64) [][2]int64 {
 	return out
 }
 
-func trSortedKeys(m map[string]bool) []string {
+func trSortedKeys[V any](m map[string]V) []string {
 	out := make([]string, 0, len(m))
 	for k := range m {
 		out = append(out, k)

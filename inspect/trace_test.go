@@ -18,6 +18,11 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/apache/arrow-go/v18/arrow/array"
+	"github.com/apache/arrow-go/v18/arrow/memory"
+	"github.com/apache/arrow-go/v18/parquet/file"
+	"github.com/apache/arrow-go/v18/parquet/pqarrow"
+
 	"hindcast/pipeline"
 	"hindcast/stages"
 )
@@ -385,72 +390,170 @@ func TestTraceEpisodeWithoutConfig(t *testing.T) {
 	}
 }
 
-func TestTraceSource(t *testing.T) {
-	fx := trtSmall(t)
-	lay := fx.lay
-	ctx := context.Background()
-	for _, key := range []string{"a.jsonl", "b.jsonl"} {
-		// Expected, from the inputs: every step read from key, its frames
-		// row, and the pairs rows of that step (one per strategy, steps
-		// 0…T−2 only).
-		rows := map[string][]int64{}
-		epsOf := map[string]map[string]bool{}
-		var wantEps []TraceEpisode
-		ids := append([]string{}, fx.logs.order...)
-		sort.Strings(ids)
-		for _, id := range ids {
-			ep := fx.logs.eps[id]
-			var steps []TraceStep
-			for _, s := range ep.steps {
-				if s.Src != key {
-					continue
-				}
-				steps = append(steps, s)
-				fp, pp := lay.path("frames", id), lay.path("pairs", id)
-				rows[fp] = append(rows[fp], lay.framesAt[id]+int64(s.Step))
-				if epsOf[fp] == nil {
-					epsOf[fp] = map[string]bool{}
-				}
-				epsOf[fp][id] = true
-				if int(s.Step) < len(ep.steps)-1 {
-					for k := range lay.strategies {
-						rows[pp] = append(rows[pp], lay.pairsAt[id]+int64(len(lay.strategies))*int64(s.Step)+int64(k))
-					}
-					if epsOf[pp] == nil {
-						epsOf[pp] = map[string]bool{}
-					}
-					epsOf[pp][id] = true
-				}
-			}
-			if len(steps) > 0 {
-				wantEps = append(wantEps, TraceEpisode{ID: id, Unit: ep.unit, Split: lay.split[id], Partition: lay.part[id], Steps: steps})
-			}
-		}
-		var wantFiles []TraceFile
-		for path, rs := range rows {
-			some := trtSortedSet(epsOf[path])
-			wantFiles = append(wantFiles, TraceFile{Path: path, Table: strings.Split(path, "/")[0],
-				Split: lay.split[some[0]], Partition: lay.part[some[0]], Rows: trtRuns(rs), Episodes: some})
-		}
-		sort.Slice(wantFiles, func(i, j int) bool { return wantFiles[i].Path < wantFiles[j].Path })
+// trtPair is a pairs row as arrow-go (an independent Parquet reader) reads
+// it: its episode and step, and its goal's episode and step.
+type trtPair struct {
+	ep, goalEp     string
+	step, goalStep int32
+}
 
-		// By key, and by the object's URI as the manifest records it.
-		for _, q := range []string{key, pipeline.JoinURI(fx.v.Manifest.SourceRoot, key)} {
-			res, err := Trace(ctx, fx.v, TraceQuery{Source: q})
-			if err != nil {
-				t.Fatalf("%s: %v", q, err)
-			}
-			trtDeepEqual(t, q+" files", res.Files, wantFiles)
-			trtDeepEqual(t, q+" episodes", res.Episodes, wantEps)
-			if res.Source == nil || res.Source.Key != key || res.Source.DuplicateOf != nil {
-				t.Errorf("%s: source %+v", q, res.Source)
+// trtPairsOf reads every row of a version's pairs shard with arrow-go.
+func trtPairsOf(t *testing.T, v *pipeline.Version, path string) []trtPair {
+	t.Helper()
+	r, err := v.Store.Open(context.Background(), path, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	raw, err := io.ReadAll(r)
+	r.Close()
+	if err != nil {
+		t.Fatal(err)
+	}
+	rdr, err := file.NewParquetReader(bytes.NewReader(raw))
+	if err != nil {
+		t.Fatalf("arrow-go cannot open %s: %v", path, err)
+	}
+	defer rdr.Close()
+	fr, err := pqarrow.NewFileReader(rdr, pqarrow.ArrowReadProperties{BatchSize: 4096}, memory.DefaultAllocator)
+	if err != nil {
+		t.Fatal(err)
+	}
+	tbl, err := fr.ReadTable(context.Background())
+	if err != nil {
+		t.Fatalf("arrow-go cannot read %s: %v", path, err)
+	}
+	defer tbl.Release()
+	cols := map[string][]any{}
+	for c := range int(tbl.NumCols()) {
+		col := tbl.Column(c)
+		for _, chunk := range col.Data().Chunks() {
+			for i := range chunk.Len() {
+				switch a := chunk.(type) {
+				case *array.String:
+					cols[col.Name()] = append(cols[col.Name()], a.Value(i))
+				case *array.Int32:
+					cols[col.Name()] = append(cols[col.Name()], a.Value(i))
+				}
 			}
 		}
 	}
-	// a.jsonl has 44 lines: 42 frames, a blank line (not counted, SPEC §1)
-	// and a malformed one.
-	if res, err := Trace(ctx, fx.v, TraceQuery{Source: "a.jsonl"}); err != nil || res.Source.Lines != 43 || res.Source.Kept != 42 {
-		t.Errorf("a.jsonl: %+v, %v; want 43 lines, 42 kept", res.Source, err)
+	out := make([]trtPair, tbl.NumRows())
+	for i := range out {
+		out[i] = trtPair{ep: cols["episode"][i].(string), step: cols["step"][i].(int32),
+			goalEp: cols["goal_episode"][i].(string), goalStep: cols["goal_step"][i].(int32)}
+	}
+	return out
+}
+
+// TestTraceSource checks a source's answer against one computed from the
+// inputs and from the shards read whole by arrow-go: its frames rows, and
+// every pairs row that holds one of its frames, as the row's own step, as
+// its next step (next_obs), or as its goal (from the same episode, or from
+// another one for negative goals).
+func TestTraceSource(t *testing.T) {
+	l := trtFleet()
+	lay := trtExpect(l, false)
+	ctx := context.Background()
+	for _, negatives := range []int{0, 1} {
+		v := trtBuild(t, strings.Replace(trtConfig, "negative: 0", fmt.Sprintf("negative: %d", negatives), 1), l.files)
+		pairs := map[string][]trtPair{}
+		for _, f := range v.Manifest.Files {
+			if f.Table == "pairs" {
+				pairs[f.Path] = trtPairsOf(t, v, f.Path)
+			}
+		}
+		for _, key := range []string{"a.jsonl", "b.jsonl"} {
+			what := fmt.Sprintf("negative %d, %s", negatives, key)
+			rows := map[string][]int64{}
+			epsOf := map[string]map[string]bool{}
+			keep := func(path string, row int64, id string) {
+				rows[path] = append(rows[path], row)
+				if epsOf[path] == nil {
+					epsOf[path] = map[string]bool{}
+				}
+				epsOf[path][id] = true
+			}
+			// Every step read from key and its frames row.
+			from := map[string]map[int32]bool{}
+			var wantEps []TraceEpisode
+			ids := append([]string{}, l.order...)
+			sort.Strings(ids)
+			for _, id := range ids {
+				ep := l.eps[id]
+				var steps []TraceStep
+				for _, s := range ep.steps {
+					if s.Src != key {
+						continue
+					}
+					steps = append(steps, s)
+					if from[id] == nil {
+						from[id] = map[int32]bool{}
+					}
+					from[id][s.Step] = true
+					keep(lay.path("frames", id), lay.framesAt[id]+int64(s.Step), id)
+				}
+				if len(steps) > 0 {
+					wantEps = append(wantEps, TraceEpisode{ID: id, Unit: ep.unit, Split: lay.split[id], Partition: lay.part[id], Steps: steps})
+				}
+			}
+			// Every pairs row that holds one of those frames.
+			asNext, asOtherGoal := 0, 0
+			for path, ps := range pairs {
+				for i, p := range ps {
+					own, next, goal := from[p.ep][p.step], from[p.ep][p.step+1], from[p.goalEp][p.goalStep]
+					if own || next || goal {
+						keep(path, int64(i), p.ep)
+					}
+					if next && !own {
+						asNext++
+					}
+					if goal && p.goalEp != p.ep && !own && !next {
+						asOtherGoal++
+					}
+				}
+			}
+			// E2's steps 0–11 are in a.jsonl and 12–19 in b.jsonl: step 11's
+			// rows (3 strategies, or 4 with a negative) hold b.jsonl's frame
+			// as next_obs only.
+			if key == "b.jsonl" && asNext != 3+negatives {
+				t.Errorf("%s: %d pairs rows hold the source's frame as next_obs only, want %d (E2 step 11)", what, asNext, 3+negatives)
+			}
+			if negatives > 0 && asOtherGoal == 0 {
+				t.Errorf("%s: no pairs row of another episode took a frame of the source as its negative goal", what)
+			}
+			var wantFiles []TraceFile
+			for path, rs := range rows {
+				some := trtSortedSet(epsOf[path])
+				var split string
+				var part int
+				for _, f := range v.Manifest.Files {
+					if f.Path == path {
+						split, part = f.Split, f.Partition
+					}
+				}
+				wantFiles = append(wantFiles, TraceFile{Path: path, Table: strings.Split(path, "/")[0],
+					Split: split, Partition: part, Rows: trtRuns(rs), Episodes: some})
+			}
+			sort.Slice(wantFiles, func(i, j int) bool { return wantFiles[i].Path < wantFiles[j].Path })
+
+			// By key, and by the object's URI as the manifest records it.
+			for _, q := range []string{key, pipeline.JoinURI(v.Manifest.SourceRoot, key)} {
+				res, err := Trace(ctx, v, TraceQuery{Source: q})
+				if err != nil {
+					t.Fatalf("%s: %v", q, err)
+				}
+				trtDeepEqual(t, what+" files", res.Files, wantFiles)
+				trtDeepEqual(t, what+" episodes", res.Episodes, wantEps)
+				if res.Source == nil || res.Source.Key != key || res.Source.DuplicateOf != nil {
+					t.Errorf("%s: source %+v", q, res.Source)
+				}
+			}
+		}
+		// a.jsonl has 44 lines: 42 frames, a blank line (not counted, SPEC
+		// §1) and a malformed one.
+		if res, err := Trace(ctx, v, TraceQuery{Source: "a.jsonl"}); err != nil || res.Source.Lines != 43 || res.Source.Kept != 42 {
+			t.Errorf("a.jsonl: %+v, %v; want 43 lines, 42 kept", res.Source, err)
+		}
 	}
 }
 
@@ -956,6 +1059,7 @@ goals:
   future: 1
   geometric: 1
   final: 1
+  negative: %d
 parquet:
   row_group_rows: %d
 `
@@ -976,8 +1080,16 @@ parquet:
 			}
 		}
 	}
-	for _, rg := range []int{1024, 65536} {
-		v := trtBuild(b, fmt.Sprintf(cfg, rg), l.files)
+	// Row groups of 1,024 and of the default 65,536 rows; and the default
+	// with a negative goal per step, which a source query must also search
+	// for (by the unsorted goal_episode column).
+	for _, opt := range []struct{ negative, rg int }{{0, 1024}, {0, 65536}, {1, 65536}} {
+		rg := opt.rg
+		name := fmt.Sprintf("RowGroup=%d", rg)
+		if opt.negative > 0 {
+			name += "+negative"
+		}
+		v := trtBuild(b, fmt.Sprintf(cfg, opt.negative, rg), l.files)
 		if v.Manifest.Funnel.Episodes != 10_000 {
 			b.Fatalf("%d episodes, want 10000", v.Manifest.Funnel.Episodes)
 		}
@@ -1006,19 +1118,19 @@ parquet:
 			b.ReportMetric(float64(read)/float64(i), "read-B/op")
 			b.ReportMetric(float64(size)/float64(i), "files-B/op")
 		}
-		b.Run(fmt.Sprintf("RowGroup=%d/Episode", rg), func(b *testing.B) {
+		b.Run(name+"/Episode", func(b *testing.B) {
 			run(b, func(i int) TraceQuery { return TraceQuery{Episode: l.order[(i*7919)%len(l.order)]} })
 		})
-		b.Run(fmt.Sprintf("RowGroup=%d/Source", rg), func(b *testing.B) {
+		b.Run(name+"/Source", func(b *testing.B) {
 			run(b, func(i int) TraceQuery { return TraceQuery{Source: sources[(i*31)%len(sources)]} })
 		})
-		b.Run(fmt.Sprintf("RowGroup=%d/RowFrames", rg), func(b *testing.B) {
+		b.Run(name+"/RowFrames", func(b *testing.B) {
 			run(b, func(i int) TraceQuery {
 				f := frames[i%len(frames)]
 				return TraceQuery{File: f.Path, Row: int64(i*7919) % f.Rows}
 			})
 		})
-		b.Run(fmt.Sprintf("RowGroup=%d/RowPairs", rg), func(b *testing.B) {
+		b.Run(name+"/RowPairs", func(b *testing.B) {
 			run(b, func(i int) TraceQuery {
 				f := pairs[i%len(pairs)]
 				return TraceQuery{File: f.Path, Row: int64(i*7919) % f.Rows}
