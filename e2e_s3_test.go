@@ -472,13 +472,13 @@ func TestS3RunsUnderFaults(t *testing.T) {
 			name := strings.ToLower(k.String())
 			extra := "  attempts: 6\n  timeout: 10s\n"
 			if k == faultproxy.Delay {
-				extra = "  attempts: 6\n  timeout: 300ms\n" // the delay (1s) is past it
+				extra = "  attempts: 6\n  timeout: 1s\n" // the delay (4s) is past it
 			}
 			cfg := s3Cfg(name, fp.URL, extra)
 			before := fp.Injected()[k]
 			fp.Set(
-				faultproxy.Rule{Kind: k, Method: "GET", Skip: 3, Times: 2, Delay: time.Second},
-				faultproxy.Rule{Kind: k, Method: "PUT", Skip: 3, Times: 2, Delay: time.Second},
+				faultproxy.Rule{Kind: k, Method: "GET", Skip: 3, Times: 2, Delay: 4 * time.Second},
+				faultproxy.Rule{Kind: k, Method: "PUT", Skip: 3, Times: 2, Delay: 4 * time.Second},
 			)
 			defer fp.Set()
 			out, errOut := s3MustRun(t, srv.SecretKey, "run", "--config", cfg, "--version", "v1", "--parallel", "2")

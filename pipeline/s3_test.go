@@ -826,11 +826,15 @@ func TestS3Faults(t *testing.T) {
 			t.Run(op.name+"/"+k.String(), func(t *testing.T) {
 				opt := StorageConfig{Attempts: 4, Timeout: Duration(10 * time.Second)}
 				if k == faultproxy.Delay {
-					opt.Timeout = Duration(300 * time.Millisecond)
+					// The delay is well past the timeout, and the timeout
+					// well past what a request takes on a loaded 2-core
+					// machine under the race detector, so that exactly
+					// the delayed request times out.
+					opt.Timeout = Duration(time.Second)
 				}
 				s, m := r.store(t, "f/", opt)
 				before := r.fp.Injected()[k]
-				r.fp.Set(faultproxy.Rule{Kind: k, Method: op.method, Query: op.query, PathContains: op.path, Times: 1, Delay: time.Second})
+				r.fp.Set(faultproxy.Rule{Kind: k, Method: op.method, Query: op.query, PathContains: op.path, Times: 1, Delay: 4 * time.Second})
 				r.rec.reset(0)
 				err := op.run(t, s)
 				r.fp.Set()
