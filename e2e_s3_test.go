@@ -23,6 +23,7 @@ import (
 	"path/filepath"
 	"reflect"
 	"regexp"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
@@ -335,6 +336,43 @@ func TestS3DemoEndToEnd(t *testing.T) {
 	}
 	if r := s3LogRetries(t, errB); r != 0 {
 		t.Errorf("storage log: %d retries in a fault-free run", r)
+	}
+
+	// A commit killed part way on S3 leaves a folder without manifest.json
+	// (not a version, SPEC §4): here a shard of another run and two
+	// multipart uploads it never finished, one of them the manifest. The
+	// next commit of that version clears them: the folder then holds
+	// exactly B's files and its manifest, and nothing is pending.
+	ctx := context.Background()
+	const folder = "datasets/larkspur-aisles/c/"
+	if _, err := c.PutObject(ctx, &s3.PutObjectInput{Bucket: aws.String(bucket), Key: aws.String(folder + "pairs/split=train/part-99999.parquet"),
+		Body: strings.NewReader("PAR1 of another run")}); err != nil {
+		t.Fatal(err)
+	}
+	for _, key := range []string{folder + "manifest.json", folder + mB.Files[0].Path} {
+		if _, err := c.CreateMultipartUpload(ctx, &s3.CreateMultipartUploadInput{Bucket: aws.String(bucket), Key: aws.String(key)}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	s3MustRun(t, srv.SecretKey, "commit", "--config", cfgB, "--version", "c")
+	mC := s3ParseManifest(t, s3Get(t, c, bucket, folder+"manifest.json"))
+	want := []string{folder + "manifest.json"}
+	for _, f := range mB.Files {
+		want = append(want, folder+f.Path)
+	}
+	slices.Sort(want)
+	if got := s3Keys(t, c, bucket, folder); !slices.Equal(got, want) {
+		t.Errorf("version c holds %q, want exactly %q", got, want)
+	}
+	if mC.Digest != mB.Digest {
+		t.Errorf("digest of the commit over leftovers %s, want %s", mC.Digest, mB.Digest)
+	}
+	pending, err := c.ListMultipartUploads(ctx, &s3.ListMultipartUploadsInput{Bucket: aws.String(bucket), Prefix: aws.String(folder)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(pending.Uploads) != 0 {
+		t.Errorf("%d multipart uploads still pending under %s after the commit", len(pending.Uploads), folder)
 	}
 }
 

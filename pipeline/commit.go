@@ -44,27 +44,30 @@ func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) erro
 	} else if !errors.Is(err, ErrNotFound) {
 		return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), err)
 	}
-	// A folder without manifest.json is not a version (SPEC §4), but a
-	// commit killed part way leaves one: shards, a half-written manifest, on
-	// S3 pending multipart parts. Clear it, so that the version folder ends
-	// up holding exactly its manifest's files.
-	if err := DeletePrefix(ctx, out, prefix); err != nil {
-		return fmt.Errorf("commit %s: clear what an unfinished commit left: %w", JoinURI(out.URI(), prefix), err)
-	}
+	type shard struct{ work, path, sha string }
+	var shards []shard
 	for _, s := range res.Sealed[StagePack] {
 		var p PackSummary
 		if err := json.Unmarshal(s.Summary, &p); err != nil {
 			return fmt.Errorf("commit: pack %s: %w", s.Item.ID, err)
 		}
 		for _, f := range p.Files {
-			if err := publish(ctx, work, f.Work, out, prefix+f.Path, f.SHA256); err != nil {
-				return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+f.Path), err)
-			}
+			shards = append(shards, shard{f.Work, f.Path, f.SHA256})
 		}
 	}
 	if q := m.Quarantine; q != nil {
-		if err := publish(ctx, work, q.Work, out, prefix+q.Path, q.SHA256); err != nil {
-			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+q.Path), err)
+		shards = append(shards, shard{q.Work, q.Path, q.SHA256})
+	}
+	keep := map[string]bool{}
+	for _, f := range shards {
+		keep[prefix+f.path] = true
+	}
+	if err := clearUnfinished(ctx, out, prefix, keep); err != nil {
+		return fmt.Errorf("commit %s: clear what an unfinished commit left: %w", JoinURI(out.URI(), prefix), err)
+	}
+	for _, f := range shards {
+		if err := publish(ctx, work, f.work, out, prefix+f.path, f.sha); err != nil {
+			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+f.path), err)
 		}
 	}
 	b, err := json.MarshalIndent(m, "", "  ")
@@ -76,6 +79,42 @@ func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) erro
 			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), ErrVersionExists)
 		}
 		return err
+	}
+	return nil
+}
+
+// UnfinishedDeleter is implemented by stores whose killed writers leave
+// something that List does not show: local temporary files, S3 pending
+// multipart uploads.
+type UnfinishedDeleter interface {
+	DeleteUnfinished(ctx context.Context, prefix string) error
+}
+
+// clearUnfinished removes from the version folder prefix (which has no
+// manifest.json, so is not a version, SPEC §4) what a commit killed part way
+// left there: files that the new manifest will not list, and unfinished
+// writes. The files it will list are left for publish to replace, or to
+// keep when they already are the same: a second commit of the same version
+// from the same work running at once then fails on its manifest write, but
+// neither can leave a version that lacks one of its files.
+func clearUnfinished(ctx context.Context, out Store, prefix string, keep map[string]bool) error {
+	var stale []string
+	err := out.List(ctx, prefix, func(o ObjectInfo) error {
+		if !keep[o.Key] {
+			stale = append(stale, o.Key)
+		}
+		return nil
+	})
+	if err != nil && !errors.Is(err, ErrNotFound) {
+		return err
+	}
+	for _, k := range stale {
+		if err := out.Delete(ctx, k); err != nil {
+			return err
+		}
+	}
+	if u, ok := Unwrap(out).(UnfinishedDeleter); ok {
+		return u.DeleteUnfinished(ctx, prefix)
 	}
 	return nil
 }

@@ -321,6 +321,31 @@ func (s *LocalStore) DeleteFolder(ctx context.Context, prefix string) error {
 	return nil
 }
 
+// DeleteUnfinished implements UnfinishedDeleter: it removes the temporary
+// files of unfinished writes under prefix, which List does not show.
+func (s *LocalStore) DeleteUnfinished(ctx context.Context, prefix string) error {
+	start := s.Path(prefix)
+	err := filepath.WalkDir(start, func(p string, d fs.DirEntry, err error) error {
+		if err != nil {
+			if errors.Is(err, fs.ErrNotExist) && p == start {
+				return filepath.SkipAll
+			}
+			return err
+		}
+		if d.IsDir() || !strings.Contains(d.Name(), tempMarker) {
+			return nil
+		}
+		if err := os.Remove(p); err != nil && !errors.Is(err, fs.ErrNotExist) {
+			return err
+		}
+		return nil
+	})
+	if err != nil {
+		return fmt.Errorf("delete unfinished writes %s: %w", JoinURI(s.URI(), prefix), err)
+	}
+	return nil
+}
+
 // Link implements Linker: a hard link publishes a local file without
 // copying it; it fails (and the caller copies) across file systems.
 func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) error {
