@@ -351,6 +351,9 @@ func (s *S3Store) DeleteUnfinished(ctx context.Context, prefix string) error {
 			})
 			return err
 		})
+		if isStatus(err, http.StatusNotImplemented) {
+			return nil // a store without the call: nothing can be pending that it would list
+		}
 		if err != nil {
 			return fmt.Errorf("list pending uploads %s: %w", s.uriOf(prefix), mapS3Error(err))
 		}
@@ -639,7 +642,8 @@ func mapS3Error(err error) error {
 // retryableS3 decides whether a failed request may succeed when repeated:
 // server errors (5xx), throttling (429, 503 SlowDown), timeouts, connection
 // resets and short bodies are; permission, missing-object and bad-request
-// answers (4xx) are not.
+// answers (4xx) are not, nor 501 (the store lacks the call or the header:
+// RFC 9110 §15.6.2), which callers that can do without it handle.
 func retryableS3(err error) bool {
 	// The SDK also wraps failures that got no answer (a reset, a timeout:
 	// status 0) or a cut one (status 200) in a ResponseError; only a real
@@ -647,7 +651,7 @@ func retryableS3(err error) bool {
 	var re *awshttp.ResponseError
 	if errors.As(err, &re) && re.HTTPStatusCode() >= 300 {
 		code := re.HTTPStatusCode()
-		return code >= 500 || code == http.StatusTooManyRequests || code == http.StatusRequestTimeout
+		return code >= 500 && code != http.StatusNotImplemented || code == http.StatusTooManyRequests || code == http.StatusRequestTimeout
 	}
 	var ae smithy.APIError
 	if errors.As(err, &ae) {

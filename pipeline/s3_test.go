@@ -862,6 +862,79 @@ func TestS3Faults(t *testing.T) {
 	}
 }
 
+// A store without conditional writes answers a PUT with If-None-Match 501
+// Not Implemented (RFC 9110 §15.6.2): that is not retried; the commit checks
+// with a HEAD instead and fails clearly when the key is taken. A store
+// without ListMultipartUploads has nothing pending to abort.
+func TestS3WithoutConditionalWrites(t *testing.T) {
+	r := newS3Rig(t, "hc-nocond")
+	ctx := context.Background()
+	requests := func(method string) int {
+		return len(r.rec.requests(func(s s3Seen) bool { return s.Method == method }))
+	}
+
+	t.Run("NewKey", func(t *testing.T) {
+		s, m := r.store(t, "", StorageConfig{Attempts: 4})
+		r.rec.reset(0)
+		r.fp.Set(faultproxy.Rule{Kind: faultproxy.NotImplemented501, Method: http.MethodPut, Times: 1})
+		err := Put(ctx, s, "v/manifest.json", []byte("first"), true)
+		r.fp.Set()
+		if err != nil {
+			t.Fatalf("exclusive put of a new key without conditional writes: %v", err)
+		}
+		if got := r.get(t, "v/manifest.json"); string(got) != "first" {
+			t.Errorf("object %q, want %q", got, "first")
+		}
+		// The refused conditional PUT, the HEAD, the plain PUT; the PUT
+		// that got 501 is not seen by the server.
+		if q, rt := m.Requests.Load(), m.Retries.Load(); q != 3 || rt != 0 {
+			t.Errorf("%d requests, %d retries; want 3 (PUT, HEAD, PUT), 0", q, rt)
+		}
+		if h, p := requests(http.MethodHead), requests(http.MethodPut); h != 1 || p != 1 {
+			t.Errorf("server saw %d HEAD and %d PUT, want 1 and 1", h, p)
+		}
+	})
+
+	t.Run("TakenKey", func(t *testing.T) {
+		s, m := r.store(t, "", StorageConfig{Attempts: 4})
+		r.fp.Set(faultproxy.Rule{Kind: faultproxy.NotImplemented501, Method: http.MethodPut, Times: 1})
+		err := Put(ctx, s, "v/manifest.json", []byte("second"), true)
+		r.fp.Set()
+		r.noSecret(t, err)
+		if !errors.Is(err, ErrExists) || !strings.Contains(err.Error(), "no conditional writes") || !strings.Contains(err.Error(), "s3://hc-nocond/v/manifest.json") {
+			t.Errorf("exclusive put over a key without conditional writes: %v; want ErrExists naming the key and the check", err)
+		}
+		if got := r.get(t, "v/manifest.json"); string(got) != "first" {
+			t.Errorf("object %q after a refused put, want %q", got, "first")
+		}
+		if q, rt := m.Requests.Load(), m.Retries.Load(); q != 2 || rt != 0 {
+			t.Errorf("%d requests, %d retries; want 2 (PUT, HEAD), 0", q, rt)
+		}
+	})
+
+	t.Run("NoPendingUploadsCall", func(t *testing.T) {
+		s, m := r.store(t, "", StorageConfig{Attempts: 4})
+		if err := Put(ctx, s, "w/item/a.bin", []byte("a"), false); err != nil {
+			t.Fatal(err)
+		}
+		r.fp.Set(faultproxy.Rule{Kind: faultproxy.NotImplemented501, Method: http.MethodGet, Query: "uploads"})
+		err := DeletePrefix(ctx, s, "w/item/")
+		r.fp.Set()
+		if err != nil {
+			t.Fatalf("clearing a folder on a store without ListMultipartUploads: %v", err)
+		}
+		if _, err := s.Stat(ctx, "w/item/a.bin"); !errors.Is(err, ErrNotFound) {
+			t.Errorf("object after clearing its folder: %v, want ErrNotFound", err)
+		}
+		if got := r.fp.Injected()[faultproxy.NotImplemented501]; got != 3 {
+			t.Errorf("%d answers of 501 in this test, want 3 (one per subtest, not retried)", got)
+		}
+		if rt := m.Retries.Load(); rt != 0 {
+			t.Errorf("%d retries, want 0", rt)
+		}
+	})
+}
+
 // An exclusive PUT whose response is lost after the server stored the
 // object is retried, and the retry finds the key taken: by its own write.
 func TestS3ExclusivePutLostResponse(t *testing.T) {

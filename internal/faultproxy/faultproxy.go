@@ -49,6 +49,10 @@ const (
 	// Delay waits Rule.Delay, then forwards, unless the client has gone
 	// away by then.
 	Delay
+	// NotImplemented501 answers 501 with an S3 NotImplemented XML body,
+	// without forwarding: a store that lacks a call or a header (such as a
+	// conditional write), not a transient fault.
+	NotImplemented501
 	numKinds
 )
 
@@ -64,6 +68,8 @@ func (k Kind) String() string {
 		return "CutBody"
 	case Delay:
 		return "Delay"
+	case NotImplemented501:
+		return "NotImplemented501"
 	}
 	return "Kind(" + strconv.Itoa(int(k)) + ")"
 }
@@ -315,6 +321,8 @@ func (p *Proxy) ServeHTTP(w http.ResponseWriter, req *http.Request) {
 		s3Error(w, req, http.StatusInternalServerError, "InternalError", "We encountered an internal error. Please try again.")
 	case SlowDown503:
 		s3Error(w, req, http.StatusServiceUnavailable, "SlowDown", "Please reduce your request rate.")
+	case NotImplemented501:
+		s3Error(w, req, http.StatusNotImplemented, "NotImplemented", "A header you provided implies functionality that is not implemented.")
 	case Reset:
 		abort(w, true)
 	case CutBody:
