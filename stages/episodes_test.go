@@ -246,6 +246,8 @@ func TestSegmenterSameTime(t *testing.T) {
 		{"ev end", func(f *schemas.Frame) { f.Ev = schemas.EvEnd }, pipeline.Conflict},
 		{"empty task vs none", func(f *schemas.Frame) { f.HasTask = true }, pipeline.Conflict},
 		{"success false vs none", func(f *schemas.Frame) { f.HasSuccess = true }, pipeline.Conflict},
+		{"success value", func(f *schemas.Frame) { f.HasSuccess, f.Success = true, true }, pipeline.Conflict},
+		{"task text", func(f *schemas.Frame) { f.HasTask, f.Task = true, "pick" }, pipeline.Conflict},
 		{"img ref", func(f *schemas.Frame) { img(f, "frames/b.png") }, pipeline.Conflict},
 		{"embodiment", func(f *schemas.Frame) { f.Embodiment = "arm2" }, pipeline.Conflict},
 		{"same img ref", func(f *schemas.Frame) { img(f, "frames/a.png") }, pipeline.Duplicate},

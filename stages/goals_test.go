@@ -384,6 +384,56 @@ func TestGeometricOffsetChiSquare(t *testing.T) {
 	}
 }
 
+// TestGoalsStrategiesFollowTheirLaws checks the laws where the goals stage
+// draws them (relabel), not only in the drawing functions: over many
+// episodes, step 0's offsets (n = T−1 = 10) follow the uniform law for
+// future (Andrychowicz et al. 2017) and the truncated geometric law with the
+// configured γ for geometric (Eysenbach et al. 2021), each by Pearson's
+// test at the 0.999 quantile; and each sample is far from the other law,
+// and from the geometric law with 1−γ, so a swapped call or parameter fails.
+func TestGoalsStrategiesFollowTheirLaws(t *testing.T) {
+	emb := &pipeline.Embodiment{Obs: 2, GoalDims: []int{0, 1}, GoalTolerance: 0.03}
+	const T, episodes, gamma = 11, 20000, 0.7
+	n := T - 1
+	uniform := make([]float64, n)
+	for i := range uniform {
+		uniform[i] = 1 / float64(n)
+	}
+	geometric, flipped := goalsTruncGeom(gamma, n), goalsTruncGeom(1-gamma, n)
+	proj := goalsRamp(T)
+	for _, c := range []struct {
+		name       string
+		gc         pipeline.GoalConfig
+		law, other []float64
+	}{
+		{"future", pipeline.GoalConfig{Future: 1, Gamma: gamma}, uniform, geometric},
+		{"geometric", pipeline.GoalConfig{Geometric: 1, Gamma: gamma}, geometric, uniform},
+	} {
+		cfg := &pipeline.Config{Seed: 11, Goals: c.gc}
+		counts := make([]int, n)
+		for e := range episodes {
+			id := fmt.Sprintf("u-%d", e)
+			goals := goalsCollect(t, cfg, emb, id, proj)
+			if len(goals) != n || goals[0].Step != 0 || goals[0].Strategy.String() != c.name {
+				t.Fatalf("%s %s: %d goals, first %+v; want %d, step 0 by %s", c.name, id, len(goals), goals[0], n, c.name)
+			}
+			counts[goals[0].GoalOffset-1]++
+		}
+		lim := goalsWilsonHilferty(n - 1)
+		if x2 := goalsChiSquare(counts, c.law, episodes); x2 > lim {
+			t.Errorf("%s: χ² = %.1f against its law, above the 0.999 quantile %.1f (df %d); counts %v", c.name, x2, lim, n-1, counts)
+		}
+		if x2 := goalsChiSquare(counts, c.other, episodes); x2 < 10*lim {
+			t.Errorf("%s: χ² = %.1f against the other strategy's law: the draws cannot tell them apart", c.name, x2)
+		}
+		if c.name == "geometric" {
+			if x2 := goalsChiSquare(counts, flipped, episodes); x2 < 10*lim {
+				t.Errorf("geometric: χ² = %.1f against the law with 1−γ: the draws cannot tell γ from 1−γ", x2)
+			}
+		}
+	}
+}
+
 func TestGeometricOffsetMean(t *testing.T) {
 	// The truncated law's mean in closed form: E[K] = 1/(1−γ) − nγ^n/(1−γ^n).
 	// Worked out by hand:

@@ -456,7 +456,8 @@ func storeFrames(ctx context.Context, work pipeline.Store, key string, f32 bool,
 
 // lineReader splits a stream into physical lines without ever holding more
 // than maxLen+2 bytes of one: a longer line is skipped to its end and
-// reported as oversize.
+// reported as oversize, unless it held only white space (it is then
+// returned empty, a blank line).
 type lineReader struct {
 	br     *bufio.Reader
 	maxLen int
@@ -477,14 +478,21 @@ func newLineReader(r io.Reader, maxLen int) *lineReader {
 // partial line.
 func (lr *lineReader) next() (line []byte, eol, oversize bool, err error) {
 	lr.buf = lr.buf[:0]
+	// A line of only white space is skipped whatever its length (SPEC §1),
+	// so a skipped oversize line is watched for anything else.
+	blank := true
 	for {
 		chunk, e := lr.br.ReadSlice('\n')
 		if !oversize {
 			if len(lr.buf)+len(chunk) > lr.maxLen+2 {
 				oversize = true
+				blank = isBlank(lr.buf)
 			} else {
 				lr.buf = append(lr.buf, chunk...)
 			}
+		}
+		if oversize && blank {
+			blank = isBlank(bytes.TrimSuffix(chunk, []byte("\n")))
 		}
 		if e == bufio.ErrBufferFull {
 			continue
@@ -497,6 +505,9 @@ func (lr *lineReader) next() (line []byte, eol, oversize bool, err error) {
 		break
 	}
 	if oversize {
+		if blank {
+			return lr.buf[:0], eol, false, err
+		}
 		return nil, eol, true, err
 	}
 	b := lr.buf
@@ -504,7 +515,7 @@ func (lr *lineReader) next() (line []byte, eol, oversize bool, err error) {
 		b = b[:len(b)-1]
 		b = bytes.TrimSuffix(b, []byte("\r"))
 	}
-	if len(b) > lr.maxLen {
+	if len(b) > lr.maxLen && !isBlank(b) {
 		return nil, eol, true, err
 	}
 	return b, eol, false, err

@@ -879,7 +879,7 @@ func TestIngestFixturesAreJSONLines(t *testing.T) {
 // TestIngestBOMNotCountedInLineLength: SPEC §1 ignores a byte-order mark at
 // the start of an object, and SPEC §3.1 measures a line without its line
 // end; so a first line of exactly max_line_bytes after the BOM is not
-// oversize. (Known to fail: the line reader measures the BOM too.)
+// oversize.
 func TestIngestBOMNotCountedInLineLength(t *testing.T) {
 	body := "\xef\xbb\xbf" + padTo(t, armLine("b1", 1000, ""), 200) + "\n" + armLine("b1", 2000, "") + "\n"
 	m := runPipeline(t, fixtureConfig(200), map[string][]byte{"bom.jsonl": []byte(body)})
@@ -891,8 +891,7 @@ func TestIngestBOMNotCountedInLineLength(t *testing.T) {
 // TestIngestFileURIPercentEncoded: an absolute file:// image reference is a
 // URI, whose path is percent-encoded (RFC 3986 §2.1, RFC 8089 §2): a file
 // "a b.png" is file:///…/a%20b.png, in a folder "c d" …/c%20d/…. Both
-// name existing, valid images here, so both lines are kept. (Known to fail
-// for the file name: only the folder part is decoded.)
+// name existing, valid images here, so both lines are kept.
 func TestIngestFileURIPercentEncoded(t *testing.T) {
 	imgs := fixtureImages(t)
 	outside := t.TempDir()
@@ -908,4 +907,48 @@ func TestIngestFileURIPercentEncoded(t *testing.T) {
 	srcs := []srcWant{{"pct.jsonl", 2, 2, nil}}
 	wantSource(t, m, "pct.jsonl", 2, 2, nil)
 	wantFunnel(t, m, funnelOf(1, 0, srcs, 2, 1, 1))
+}
+
+// TestIngestLongBlankLine: a line of only white space is skipped and not
+// counted (SPEC §1) whatever its length: it is not oversize, nor is an
+// unended one at the object's end truncated. Lines of max_line_bytes 200:
+// 1 kept; 2 500 spaces and tabs; 3 kept; 4 201 spaces then CRLF; 5 a line
+// of 300 bytes with one "x" after 250 spaces: oversize; 6 kept; 7 unended,
+// 400 spaces.
+func TestIngestLongBlankLine(t *testing.T) {
+	body := armLine("w1", 1000, "") + "\n" + strings.Repeat(" \t", 250) + "\n" + armLine("w1", 2000, "") + "\n" +
+		strings.Repeat(" ", 201) + "\r\n" + strings.Repeat(" ", 250) + "x" + strings.Repeat(" ", 49) + "\n" +
+		armLine("w1", 3000, "") + "\n" + strings.Repeat(" ", 400)
+	m := runPipeline(t, fixtureConfig(200), map[string][]byte{"blank.jsonl": []byte(body)})
+	srcs := []srcWant{{"blank.jsonl", 4, 3, map[string]int64{pipeline.Oversize: 1}}}
+	wantSource(t, m, "blank.jsonl", 4, 3, srcs[0].dropped)
+	wantFunnel(t, m, funnelOf(1, 0, srcs, 3, 1, 2))
+}
+
+// TestIngestFloat32Overflow: with float: float32 a finite number too large
+// for float32 (the largest is (2−2^−23)·2^127 ≈ 3.4028235e38, IEEE 754
+// binary32) becomes +Inf when stored: non_finite, checked before
+// out_of_range. With float: float64 the same values are finite, and out of
+// the declared bounds. Lines: 1 kept; 2 obs 3.5e38; 3 act −3.5e38; 4 obs
+// 3.4e38 (finite in float32, out of range); 5 kept.
+func TestIngestFloat32Overflow(t *testing.T) {
+	body := jsonLines(
+		armLine("f1", 1000, ""),
+		`{"unit":"f1","embodiment":"arm","t":2000,"obs":[3.5e38,0.5,0.5],"act":[0.1,-0.1]}`,
+		`{"unit":"f1","embodiment":"arm","t":3000,"obs":[0.5,0.5,0.5],"act":[-3.5e38,0]}`,
+		`{"unit":"f1","embodiment":"arm","t":4000,"obs":[3.4e38,0.5,0.5],"act":[0.1,-0.1]}`,
+		armLine("f1", 5000, ""),
+	)
+	for _, c := range []struct {
+		float   string
+		dropped map[string]int64
+	}{
+		{"float32", map[string]int64{pipeline.NonFinite: 2, pipeline.OutOfRange: 1}},
+		{"float64", map[string]int64{pipeline.OutOfRange: 3}},
+	} {
+		m := runPipeline(t, fixtureConfig(1000)+"float: "+c.float+"\n", map[string][]byte{"big.jsonl": body})
+		srcs := []srcWant{{"big.jsonl", 5, 2, c.dropped}}
+		wantSource(t, m, "big.jsonl", 5, 2, c.dropped)
+		wantFunnel(t, m, funnelOf(1, 0, srcs, 2, 1, 1))
+	}
 }
