@@ -579,3 +579,87 @@ func TestS3RunsUnderFaults(t *testing.T) {
 		}
 	})
 }
+
+// TestS3AbsoluteImageURIs: logs in a local folder whose camera frames are
+// absolute s3:// URIs (SPEC §1 img), spread over one folder per episode, as
+// camera uploaders often lay them out. Every frame whose object exists and
+// is a valid PNG is kept; a missing key and a cut PNG are dropped with their
+// reasons (image_missing, image_corrupt); the run reads them through the
+// config's storage section.
+func TestS3AbsoluteImageURIs(t *testing.T) {
+	const bucket = "hc-images"
+	srv := s3test.Start(t, bucket)
+	s3SetEnv(t, srv)
+	c := srv.Client()
+	ctx := context.Background()
+	okPNG, err := os.ReadFile(filepath.Join("testdata", "ingest", "frames", "ok.png"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	cutPNG, err := os.ReadFile(filepath.Join("testdata", "ingest", "frames", "cut.png"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	dir := t.TempDir()
+	var lines strings.Builder
+	const units, steps = 6, 5
+	for u := range units {
+		for s := range steps {
+			key := fmt.Sprintf("cams/u%d/ep%d/%03d.png", u, u, s)
+			body := okPNG
+			switch {
+			case u == 0 && s == 2:
+				body = nil // never uploaded: image_missing
+			case u == 1 && s == 3:
+				body = cutPNG // image_corrupt
+			}
+			if body != nil {
+				if _, err := c.PutObject(ctx, &s3.PutObjectInput{Bucket: aws.String(bucket), Key: aws.String(key), Body: bytes.NewReader(body)}); err != nil {
+					t.Fatal(err)
+				}
+			}
+			fmt.Fprintf(&lines, `{"unit":"u%d","embodiment":"cart","t":%d,"obs":[%d,1],"img":{"front":"s3://%s/%s"}}`+"\n", u, 1000+s*100, s, bucket, key)
+		}
+	}
+	if err := os.MkdirAll(filepath.Join(dir, "logs"), 0o755); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(filepath.Join(dir, "logs", "a.jsonl"), []byte(lines.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	cfg := filepath.Join(dir, "c.yaml")
+	if err := os.WriteFile(cfg, []byte(`dataset: s3-images
+source:
+  uri: logs
+partitions: 2
+embodiments:
+  cart:
+    obs: 2
+    cameras: [front]
+    goal_tolerance: 0.1
+episodes: {max_gap: 1s, min_steps: 2, max_steps: 100}
+goals: {future: 1, geometric: 0, final: 0, negative: 0}
+storage:
+  endpoint: `+srv.Endpoint+"\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	s3MustRun(t, srv.SecretKey, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
+	raw, err := os.ReadFile(filepath.Join(dir, "datasets", "s3-images", "v1", "manifest.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var m struct {
+		Funnel struct {
+			Lines, Frames, Episodes int64
+			Dropped                 map[string]int64
+		} `json:"funnel"`
+	}
+	if err := json.Unmarshal(raw, &m); err != nil {
+		t.Fatal(err)
+	}
+	f := m.Funnel
+	if f.Lines != units*steps || f.Frames != units*steps-2 || f.Episodes != units ||
+		f.Dropped["image_missing"] != 1 || f.Dropped["image_corrupt"] != 1 {
+		t.Errorf("funnel %+v; want %d lines, %d frames, %d episodes, 1 image_missing, 1 image_corrupt", f, units*steps, units*steps-2, units)
+	}
+}

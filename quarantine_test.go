@@ -111,3 +111,86 @@ episodes: {min_steps: 5}
 		t.Errorf("quarantine rows %d, funnel dropped %d, want both %d", m.Quarantine.Rows, dropped, len(want))
 	}
 }
+
+// TestQuarantineRowGroupsAreBounded: the quarantine writer buffers a row
+// group in memory, so row groups are cut at 65,536 rows and at about 32 MiB
+// of line text. 70,000 short malformed lines make row groups of 65,536 and
+// 4,464 rows; 1,100 malformed lines of 60,000 bytes (66 MB) make row groups
+// of at most 32 MiB of text each (and one line more).
+func TestQuarantineRowGroupsAreBounded(t *testing.T) {
+	for _, c := range []struct {
+		name  string
+		lines int
+		size  int
+	}{{"short", 70000, 40}, {"long", 1100, 60000}} {
+		t.Run(c.name, func(t *testing.T) {
+			dir := t.TempDir()
+			logs := filepath.Join(dir, "logs")
+			if err := os.MkdirAll(logs, 0o755); err != nil {
+				t.Fatal(err)
+			}
+			var b strings.Builder
+			b.WriteString(`{"unit":"u1","embodiment":"arm","t":1,"obs":[0,0]}` + "\n")
+			b.WriteString(`{"unit":"u1","embodiment":"arm","t":2,"obs":[0,0]}` + "\n")
+			for range c.lines {
+				b.WriteString("{" + strings.Repeat("x", c.size-1) + "\n") // malformed
+			}
+			if err := os.WriteFile(filepath.Join(logs, "a.jsonl"), []byte(b.String()), 0o644); err != nil {
+				t.Fatal(err)
+			}
+			cfgText := `dataset: q
+source: {uri: logs, max_line_bytes: 100000}
+work: work
+output: out
+quarantine: true
+embodiments:
+  arm: {obs: 2, goal_tolerance: 0.1}
+episodes: {min_steps: 2}
+`
+			if err := os.WriteFile(filepath.Join(dir, "q.yaml"), []byte(cfgText), 0o644); err != nil {
+				t.Fatal(err)
+			}
+			cfg, err := pipeline.LoadConfig(filepath.Join(dir, "q.yaml"))
+			if err != nil {
+				t.Fatal(err)
+			}
+			m, err := pipeline.Execute(context.Background(), cfg, stages.All(), pipeline.Options{Version: "v1", Parallel: 2})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if m.Quarantine == nil || m.Quarantine.Rows != int64(c.lines) {
+				t.Fatalf("quarantine %+v, want %d rows", m.Quarantine, c.lines)
+			}
+			f, err := os.Open(filepath.Join(dir, "out", "q", "v1", m.Quarantine.Path))
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer f.Close()
+			st, _ := f.Stat()
+			pf, err := parquet.OpenFile(f, st.Size())
+			if err != nil {
+				t.Fatal(err)
+			}
+			var sizes []int64
+			for _, g := range pf.RowGroups() {
+				sizes = append(sizes, g.NumRows())
+			}
+			if c.name == "short" {
+				if fmt.Sprint(sizes) != "[65536 4464]" {
+					t.Errorf("row groups of %v rows, want [65536 4464]", sizes)
+				}
+				return
+			}
+			// Each row of the long case carries 60,000 bytes of text: at
+			// most 32 MiB / 60,000 rounded up, 560, rows per group.
+			if len(sizes) < 2 {
+				t.Errorf("row groups of %v rows: 66 MB of text in one", sizes)
+			}
+			for _, n := range sizes {
+				if n > 560 {
+					t.Errorf("row groups of %v rows: one holds over 32 MiB of text", sizes)
+				}
+			}
+		})
+	}
+}

@@ -125,8 +125,10 @@ type Linker interface {
 	Link(ctx context.Context, from Store, fromKey, key string) error
 }
 
-// publish copies one shard, checking on the way that its bytes are still
-// the ones pack recorded.
+// publish puts one shard into the version: by a hard link or a
+// server-side copy when the output store can (the bytes are the work
+// area's, which pack sealed with their SHA-256), else by a copy checked on
+// the way against that SHA-256.
 func publish(ctx context.Context, work Store, from string, out Store, to, sha string) error {
 	if l, ok := Unwrap(out).(Linker); ok {
 		if err := l.Link(ctx, work, from, to); err == nil {

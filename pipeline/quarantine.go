@@ -43,6 +43,15 @@ func (c *countingHash) Write(p []byte) (int, error) {
 	return n, err
 }
 
+// A quarantine row group holds at most quarantineGroupRows rows and is cut
+// once its lines pass about quarantineGroupBytes: the writer buffers a row
+// group in memory, and a run may drop millions of lines of up to
+// max_line_bytes each.
+const (
+	quarantineGroupRows  = 65536
+	quarantineGroupBytes = 32 << 20
+)
+
 // writeQuarantine gathers the dropped lines of a run into one Parquet file in
 // the work area: first ingest's (objects in key order, lines in order; a
 // duplicate object's are left out, as its lines are), then the episodes
@@ -83,8 +92,9 @@ func writeQuarantine(ctx context.Context, cfg *Config, work Store, res *Result) 
 		parquet.CreatedBy("hindcast", ToolVersion, ""),
 		parquet.KeyValueMetadata("dataset", cfg.Dataset),
 		parquet.KeyValueMetadata("table", "quarantine"),
-		parquet.KeyValueMetadata("config_sha256", cfg.SHA256()))
-	var rows int64
+		parquet.KeyValueMetadata("config_sha256", cfg.SHA256()),
+		parquet.MaxRowsPerRowGroup(quarantineGroupRows))
+	var rows, groupBytes int64
 	batch := make([]schemas.QuarantineRow, 0, 1024)
 	flush := func() error {
 		if len(batch) == 0 {
@@ -92,7 +102,15 @@ func writeQuarantine(ctx context.Context, cfg *Config, work Store, res *Result) 
 		}
 		_, err := w.Write(batch)
 		batch = batch[:0]
-		return err
+		if err == nil && groupBytes >= quarantineGroupBytes {
+			// A row group is buffered whole until it is written: cut it
+			// by the bytes of its lines too, which may be long.
+			err, groupBytes = w.Flush(), 0
+		}
+		if err != nil {
+			return fmt.Errorf("write %s: %w", key, err)
+		}
+		return nil
 	}
 	for _, k := range keys {
 		err := ReadDropped(ctx, work, k, func(d *schemas.Dropped) error {
@@ -107,14 +125,15 @@ func writeQuarantine(ctx context.Context, cfg *Config, work Store, res *Result) 
 			}
 			batch = append(batch, r)
 			rows++
-			if len(batch) == cap(batch) {
+			groupBytes += int64(len(d.Line) + len(d.Src) + len(d.Unit) + 32)
+			if len(batch) == cap(batch) || groupBytes >= quarantineGroupBytes {
 				return flush()
 			}
 			return nil
 		})
 		if err != nil {
 			up.Abort()
-			return nil, err
+			return nil, fmt.Errorf("quarantine from %s: %w", k, err)
 		}
 	}
 	if err := flush(); err != nil {
@@ -127,7 +146,7 @@ func writeQuarantine(ctx context.Context, cfg *Config, work Store, res *Result) 
 	}
 	if err := bw.Flush(); err != nil {
 		up.Abort()
-		return nil, err
+		return nil, fmt.Errorf("write %s: %w", key, err)
 	}
 	if err := up.Commit(false); err != nil {
 		return nil, err

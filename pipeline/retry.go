@@ -119,6 +119,15 @@ func (r *meteredReader) VersionID() string {
 	return ""
 }
 
+// ETag passes the backend's tag of the object being read through, when it
+// has one.
+func (r *meteredReader) ETag() string {
+	if v, ok := r.ReadCloser.(interface{ ETag() string }); ok {
+		return v.ETag()
+	}
+	return ""
+}
+
 func (r *meteredReader) Read(p []byte) (int, error) {
 	n, err := r.ReadCloser.Read(p)
 	r.m.BytesRead.Add(int64(n))

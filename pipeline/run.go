@@ -201,7 +201,7 @@ func planStage(ctx context.Context, env *Env, st Stage, res *Result) (string, []
 	ckey := ConfigKey(st, env.Config, env.Code)
 	items, err := st.Items(ctx, env, ckey, res.Sealed)
 	if err != nil {
-		return "", nil, fmt.Errorf("%s: plan: %w", st.Name(), err)
+		return "", nil, fmt.Errorf("%s: %w", st.Name(), err)
 	}
 	return ckey, items, nil
 }

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"io/fs"
+	"math/rand/v2"
 	"net/url"
 	"os"
 	"path"
@@ -274,11 +275,38 @@ func (s *LocalStore) Create(ctx context.Context, key string) (Upload, error) {
 	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
 		return nil, fmt.Errorf("create %s: %w", JoinURI(s.URI(), key), err)
 	}
-	f, err := os.CreateTemp(filepath.Dir(dst), filepath.Base(dst)+tempMarker+"*")
+	f, err := createTemp(dst)
 	if err != nil {
 		return nil, fmt.Errorf("create %s: %w", JoinURI(s.URI(), key), err)
 	}
 	return &localUpload{f: f, dst: dst, uri: JoinURI(s.URI(), key), sync: s.Durable}, nil
+}
+
+// createTemp creates a new temporary file beside dst. Unlike os.CreateTemp
+// (mode 0600) it asks for mode 0666, so that the process's umask decides,
+// as for any file a tool writes: a published dataset is then readable by
+// whoever the operator's umask lets read it, and not by its writer alone.
+func createTemp(dst string) (*os.File, error) {
+	for range 100 {
+		name := fmt.Sprintf("%s%s%d", dst, tempMarker, rand.Uint32())
+		f, err := os.OpenFile(name, os.O_RDWR|os.O_CREATE|os.O_EXCL, 0o666)
+		if errors.Is(err, fs.ErrExist) {
+			continue
+		}
+		return f, err
+	}
+	return nil, fmt.Errorf("no free temporary name beside %s", dst)
+}
+
+// syncFolder makes a rename or link into dir durable: on POSIX file
+// systems the new name is only on disk once its folder is synced.
+func syncFolder(dir string) error {
+	d, err := os.Open(dir)
+	if err != nil {
+		return err
+	}
+	defer d.Close()
+	return d.Sync()
 }
 
 // Delete implements Store.
@@ -366,12 +394,31 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	}
 	tmp := dst + tempMarker + "link"
 	os.Remove(tmp)
+	if s.Durable {
+		// The work area writes without fsync; a published shard must be
+		// on disk before the manifest that names it.
+		if err := syncFile(orig); err != nil {
+			return err
+		}
+	}
 	if err := os.Link(orig, tmp); err != nil {
 		return err
 	}
 	err := os.Rename(tmp, dst)
 	os.Remove(tmp) // gone after a rename; there after a failed one
+	if err == nil && s.Durable {
+		err = syncFolder(filepath.Dir(dst))
+	}
 	return err
+}
+
+func syncFile(name string) error {
+	f, err := os.Open(name)
+	if err != nil {
+		return err
+	}
+	defer f.Close()
+	return f.Sync()
 }
 
 type localUpload struct {
@@ -412,11 +459,21 @@ func (u *localUpload) Commit(exclusive bool) error {
 			}
 			return fmt.Errorf("commit %s: %w", u.uri, err)
 		}
-		return nil
+		return u.syncFolder()
 	}
 	if err := os.Rename(tmp, u.dst); err != nil {
 		os.Remove(tmp)
 		return fmt.Errorf("commit %s: %w", u.uri, err)
+	}
+	return u.syncFolder()
+}
+
+func (u *localUpload) syncFolder() error {
+	if !u.sync {
+		return nil
+	}
+	if err := syncFolder(filepath.Dir(u.dst)); err != nil {
+		return fmt.Errorf("commit %s: sync its folder: %w", u.uri, err)
 	}
 	return nil
 }

@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"slices"
+	"syscall"
 	"testing"
 )
 
@@ -155,5 +156,44 @@ func TestClearUnfinished(t *testing.T) {
 	}
 	if err := clearUnfinished(ctx, s, "ds/v3/", keep); err != nil {
 		t.Errorf("clearing a folder that does not exist: %v", err)
+	}
+}
+
+// TestLocalStoreFileMode: a committed file gets the mode any tool's new file
+// gets under the process's umask (os.Create asks for 0666), not the 0600 of
+// a temporary file, so that a published dataset is readable by whom the
+// operator means it for.
+func TestLocalStoreFileMode(t *testing.T) {
+	// A known umask (common practice: 022), set for this test alone (no
+	// test of this package runs in parallel), so that 0600 and the umask's
+	// mode differ.
+	old := syscall.Umask(0o022)
+	defer syscall.Umask(old)
+	ctx := context.Background()
+	dir := t.TempDir()
+	s := NewLocalStore(dir)
+	if err := Put(ctx, s, "v/manifest.json", []byte("{}"), true); err != nil {
+		t.Fatal(err)
+	}
+	if err := Put(ctx, s, "v/pairs.parquet", []byte("PAR1"), false); err != nil {
+		t.Fatal(err)
+	}
+	ref, err := os.Create(filepath.Join(dir, "reference"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	ref.Close()
+	want, err := os.Stat(filepath.Join(dir, "reference"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, k := range []string{"v/manifest.json", "v/pairs.parquet"} {
+		got, err := os.Stat(s.Path(k))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if got.Mode().Perm() != want.Mode().Perm() || got.Mode().Perm() != 0o644 {
+			t.Errorf("%s: mode %v, want %v (what os.Create gives under umask 022)", k, got.Mode().Perm(), want.Mode().Perm())
+		}
 	}
 }

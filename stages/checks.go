@@ -8,6 +8,7 @@ import (
 	"math"
 	"net/url"
 	"path"
+	"regexp"
 	"strings"
 
 	"hindcast/pipeline"
@@ -158,6 +159,12 @@ var (
 	errCorrupt = errors.New("undecodable data URI")
 )
 
+// s3BucketName is the shape of an S3 bucket name: 3–63 of lower-case
+// letters, digits, dots and hyphens, beginning and ending with a letter or
+// digit (the S3 bucket naming rules, from memory). A reference to anything
+// else names no bucket.
+var s3BucketName = regexp.MustCompile(`^[a-z0-9][a-z0-9.-]{1,61}[a-z0-9]$`)
+
 // maxImageBytes bounds one camera frame read into memory.
 const maxImageBytes = 64 << 20
 
@@ -178,18 +185,33 @@ func (fe *imageFetcher) fetch(ctx context.Context, ref string) ([]byte, error) {
 	}
 	store, key := fe.env.Source, ref
 	if i := strings.Index(ref, "://"); i > 0 {
-		j := strings.LastIndex(ref, "/")
-		root := ref[:j+1]
-		key = ref[j+1:]
-		if strings.HasPrefix(ref, "file://") {
+		var root string
+		// Schemes are case-insensitive (RFC 3986 §3.1).
+		switch strings.ToLower(ref[:i]) {
+		case "file":
 			// A file URI is percent-encoded (RFC 8089, RFC 3986 §2.1); the
 			// folder part is decoded when its store opens, the name here.
-			// S3 keys are taken as written.
-			k, err := url.PathUnescape(key)
+			// One store per folder: a local store holds no resources.
+			j := strings.LastIndex(ref, "/")
+			root = "file://" + ref[i+3:j+1]
+			k, err := url.PathUnescape(ref[j+1:])
 			if err != nil {
 				return nil, errBadRef
 			}
 			key = k
+		case "s3":
+			// One store per bucket, so that images spread over many
+			// folders share one client and its connections. S3 keys are
+			// taken as written.
+			bucket, k, _ := strings.Cut(ref[i+3:], "/")
+			if !s3BucketName.MatchString(bucket) {
+				return nil, errBadRef
+			}
+			root, key = "s3://"+bucket+"/", k
+		default:
+			// No store reads this scheme (SPEC §1 allows keys, file://,
+			// s3:// and data: URIs): the reference names no object.
+			return nil, errBadRef
 		}
 		if fe.stores == nil {
 			fe.stores = map[string]pipeline.Store{}

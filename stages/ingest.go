@@ -83,6 +83,11 @@ func ListSource(ctx context.Context, env *pipeline.Env) ([]pipeline.ObjectInfo, 
 	if err != nil {
 		return nil, err
 	}
+	if len(objs) == 0 {
+		// A version of nothing is almost always a wrong source.uri or
+		// include pattern; a nightly run must not publish it quietly.
+		return nil, fmt.Errorf("no object under %s matches include %q (exclude %q)", env.Source.URI(), src.Include, src.Exclude)
+	}
 	return objs, nil
 }
 
@@ -169,6 +174,11 @@ func (in *ingester) run(ctx context.Context) error {
 	if v, ok := rc.(interface{ VersionID() string }); ok && v.VersionID() != "" {
 		in.sum.Version = v.VersionID()
 	}
+	// The item is keyed by the listing's size and ETag: content read from
+	// another version of the object would be sealed under the wrong key.
+	if e, ok := rc.(interface{ ETag() string }); ok && in.obj.ETag != "" && e.ETag() != "" && e.ETag() != in.obj.ETag {
+		return fmt.Errorf("%s changed since it was listed (ETag %s, listed %s); run again", in.uri, e.ETag(), in.obj.ETag)
+	}
 	src := &sourceReader{r: rc, h: sha256.New()}
 	if in.env.Progress != nil {
 		src.prog = func(n int64) { in.env.Progress.Advance("ingest", 0, n) }
@@ -199,6 +209,9 @@ func (in *ingester) run(ctx context.Context) error {
 	}
 	if in.env.Progress != nil {
 		in.env.Progress.Advance("ingest", 0, src.since)
+	}
+	if src.n != in.obj.Size {
+		return fmt.Errorf("%s changed since it was listed (%d bytes read, %d listed); run again", in.uri, src.n, in.obj.Size)
 	}
 	in.sum.Bytes = src.n
 	in.sum.SHA256 = hex.EncodeToString(src.h.Sum(nil))

@@ -3,14 +3,17 @@ package stages
 import (
 	"bytes"
 	"compress/gzip"
+	"context"
 	"crypto/sha256"
 	"encoding/base64"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"image/jpeg"
 	"image/png"
 	"io"
+	"io/fs"
 	"maps"
 	"os"
 	"path/filepath"
@@ -374,12 +377,21 @@ func TestIngestImageURIs(t *testing.T) {
 			line(5000, "frames/ok.png", abs("ok.jpg")),    // 5 kept
 			line(6000, badB64, abs("ok.jpg")),             // 6 image_corrupt: the data does not decode
 			line(7000, badB64, "frames/nope.jpg"),         // 7 image_missing: wrist, before front's corruption
+			// 8 kept: URI schemes are case-insensitive (RFC 3986 §3.1).
+			line(8000, "FILE://"+strings.TrimPrefix(abs("ok.png"), "file://"), abs("ok.jpg")),
+			// 9–12 image_missing: references that name no object hindcast
+			// can read (a scheme with no store, an impossible bucket name)
+			// are data faults, not run failures.
+			line(9000, "http://cams.example/ok.png", abs("ok.jpg")),
+			line(10000, "cam://front/ok.png", abs("ok.jpg")),
+			line(11000, "s3://Not_A_Bucket/ok.png", abs("ok.jpg")),
+			line(12000, "s3://ab/ok.png", abs("ok.jpg")),
 		),
 	}
 	m := runPipeline(t, fixtureConfig(100000), files)
-	srcs := []srcWant{{"abs.jsonl", 7, 3, map[string]int64{pipeline.ImageMissing: 2, pipeline.ImageCorrupt: 2}}}
-	wantSource(t, m, "abs.jsonl", 7, 3, srcs[0].dropped)
-	wantFunnel(t, m, funnelOf(1, 0, srcs, 3, 1, 2))
+	srcs := []srcWant{{"abs.jsonl", 12, 4, map[string]int64{pipeline.ImageMissing: 6, pipeline.ImageCorrupt: 2}}}
+	wantSource(t, m, "abs.jsonl", 12, 4, srcs[0].dropped)
+	wantFunnel(t, m, funnelOf(1, 0, srcs, 4, 1, 3))
 }
 
 // TestIngestInputFormat covers the input rules of SPEC §1: compression by
@@ -950,5 +962,55 @@ func TestIngestFloat32Overflow(t *testing.T) {
 		srcs := []srcWant{{"big.jsonl", 5, 2, c.dropped}}
 		wantSource(t, m, "big.jsonl", 5, 2, c.dropped)
 		wantFunnel(t, m, funnelOf(1, 0, srcs, 2, 1, 1))
+	}
+}
+
+// TestIngestNoObjects: a source where no object matches include (here, the
+// only object is not .jsonl) fails the run, naming the source and the
+// patterns, and writes no version.
+func TestIngestNoObjects(t *testing.T) {
+	dir := t.TempDir()
+	writeTree(t, filepath.Join(dir, "src"), map[string][]byte{"notes/a.json": jsonLines(armLine("n1", 1000, ""))})
+	cfgPath := filepath.Join(dir, "hindcast.yaml")
+	if err := os.WriteFile(cfgPath, withLocations(t, fixtureConfig(1000), "src", "work", "out"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	cfg, err := pipeline.LoadConfig(cfgPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, err = pipeline.Execute(context.Background(), cfg, All(), pipeline.Options{Version: "v1", Parallel: 2})
+	want := fmt.Sprintf(`ingest: no object under file://%s/ matches include ["**/*.jsonl" "**/*.jsonl.gz" "**/*.jsonl.zst"] (exclude [])`, filepath.ToSlash(filepath.Join(dir, "src")))
+	if err == nil || !strings.Contains(err.Error(), want) {
+		t.Errorf("run over a source with no matching object: %v; want an error containing %s", err, want)
+	}
+	if _, err := os.Stat(filepath.Join(dir, "out", cfg.Dataset, "v1", "manifest.json")); !errors.Is(err, fs.ErrNotExist) {
+		t.Errorf("manifest after the failed run: %v, want none", err)
+	}
+}
+
+// TestIngestObjectChangedSinceListing: an ingest item is keyed by the size
+// and ETag the listing gave; an object that no longer matches when read
+// (overwritten meanwhile) fails its item naming the object, instead of
+// sealing other content under that key.
+func TestIngestObjectChangedSinceListing(t *testing.T) {
+	dir := t.TempDir()
+	body := jsonLines(armLine("c1", 1000, ""), armLine("c1", 2000, ""))
+	writeTree(t, filepath.Join(dir, "src"), map[string][]byte{"a.jsonl": body})
+	cfg, err := pipeline.ParseConfig(withLocations(t, fixtureConfig(1000), "src", "work", "out"), dir, "c.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	env := &pipeline.Env{Config: cfg, Source: pipeline.NewLocalStore(filepath.Join(dir, "src")), Work: pipeline.NewLocalStore(filepath.Join(dir, "work"))}
+	// As listed before the object grew by one line.
+	listed := pipeline.ObjectInfo{Key: "a.jsonl", Size: int64(len(body)) - 10, ETag: "listed"}
+	_, err = Ingest{}.Do(context.Background(), env, pipeline.Item{ID: "a.jsonl", Key: "k", Meta: listed})
+	want := fmt.Sprintf("changed since it was listed (%d bytes read, %d listed)", len(body), len(body)-10)
+	if err == nil || !strings.Contains(err.Error(), want) || !strings.Contains(err.Error(), "a.jsonl") {
+		t.Errorf("ingest of an object that changed since listing: %v; want an error naming it, containing %q", err, want)
+	}
+	listed.Size = int64(len(body))
+	if _, err := (Ingest{}).Do(context.Background(), env, pipeline.Item{ID: "a.jsonl", Key: "k2", Meta: listed}); err != nil {
+		t.Errorf("ingest of the object as listed: %v", err)
 	}
 }

@@ -2,6 +2,7 @@ package stages
 
 import (
 	"bufio"
+	"cmp"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -32,6 +33,9 @@ type Pack struct {
 	// (a dozen columns each) would multiply memory by the number of files.
 	once   sync.Once
 	codecs map[string]compress.Codec
+	// GroupImageBytes, when > 0, replaces packGroupImageBytes (for tests
+	// that need the cut without writing 64 MiB of frames).
+	GroupImageBytes int64
 }
 
 func (st *Pack) codec(name string) compress.Codec {
@@ -132,7 +136,17 @@ type shard struct {
 	frames  *parquet.Writer
 	pairs   pairWriter
 	rowsBuf []parquet.Row
+	// imgBytes counts the camera bytes of the frames row group being
+	// buffered (see packGroupImageBytes).
+	imgBytes int64
 }
+
+// packGroupImageBytes cuts a frames row group, at an episode's end, once it
+// holds this many bytes of camera frames: the writer buffers a row group
+// in memory until it is written, and row_group_rows rows of camera frames
+// (65,536 JPEGs of 50 KB are over 3 GB) would not fit a worker. The cut
+// depends on the data alone, so it keeps the output deterministic.
+const packGroupImageBytes = 64 << 20
 
 // pairWriter hides the output float type of the pairs writer. Rows are
 // gathered one episode at a time: begin converts the episode's vectors once,
@@ -309,11 +323,14 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		shards[[2]string{table, split}] = s
 		return s, nil
 	}
-	abortAll := func() {
+	// Every way out before the last commit, a panic included, aborts the
+	// shards still open: no temporary file or pending multipart upload is
+	// left behind. Abort after Commit does nothing.
+	defer func() {
 		for _, s := range shards {
 			s.up.Abort()
 		}
-	}
+	}()
 
 	fr, c, err := pipeline.OpenFrames(ctx, env.Work, in.Episodes.File)
 	if err != nil {
@@ -338,7 +355,6 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 	)
 	for ok {
 		if err := ctx.Err(); err != nil {
-			abortAll()
 			return nil, err
 		}
 		ep = ep[:0]
@@ -367,7 +383,6 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		cnt.Frames += int64(len(ep))
 		fs, err := open("frames", split)
 		if err != nil {
-			abortAll()
 			return nil, err
 		}
 		fs.file.Episodes++
@@ -389,8 +404,18 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		}
 		fs.rowsBuf = rows
 		if _, err := fs.frames.WriteRows(fs.rowsBuf); err != nil {
-			abortAll()
 			return nil, fmt.Errorf("write frames of %s: %w", id, err)
+		}
+		for i := range ep {
+			for _, b := range ep[i].Img {
+				fs.imgBytes += int64(len(b))
+			}
+		}
+		if limit := cmp.Or(st.GroupImageBytes, packGroupImageBytes); fs.imgBytes >= limit {
+			if err := fs.frames.Flush(); err != nil {
+				return nil, fmt.Errorf("write frames of %s: %w", id, err)
+			}
+			fs.imgBytes = 0
 		}
 		fs.file.Rows += int64(len(ep))
 		if split == "train" {
@@ -400,19 +425,16 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		for haveG && g.Episode == id {
 			if ps == nil {
 				if ps, err = open("pairs", split); err != nil {
-					abortAll()
 					return nil, err
 				}
 				ps.file.Episodes++
 				ps.pairs.begin(ep, cfg.Embodiments[emb].GoalDims)
 			}
 			if int(g.Step)+1 >= len(ep) || int(g.GoalStep) >= len(ep) && g.Strategy != schemas.Negative {
-				abortAll()
 				return nil, fmt.Errorf("goal of %s at step %d beyond its %d steps", id, g.Step, len(ep))
 			}
 			name := names[g.Strategy]
 			if err := ps.pairs.add(&g, g.GoalEpisode, name); err != nil {
-				abortAll()
 				return nil, fmt.Errorf("write pairs of %s: %w", id, err)
 			}
 			ps.file.Rows++
@@ -425,25 +447,20 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		}
 		if ps != nil {
 			if err := ps.pairs.end(); err != nil {
-				abortAll()
 				return nil, fmt.Errorf("write pairs of %s: %w", id, err)
 			}
 		}
 		if haveG && g.Episode < id {
-			abortAll()
 			return nil, fmt.Errorf("goals out of step with episodes at %s", g.Episode)
 		}
 	}
 	if err := fr.Err(); err != nil {
-		abortAll()
 		return nil, err
 	}
 	if err := gr.Err(); err != nil {
-		abortAll()
 		return nil, err
 	}
 	if haveG {
-		abortAll()
 		return nil, fmt.Errorf("goal for unknown episode %s", g.Episode)
 	}
 	for _, k := range sortedPairKeys(shards) {
@@ -458,7 +475,6 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			err = s.bw.Flush()
 		}
 		if err != nil {
-			abortAll()
 			return nil, fmt.Errorf("close %s: %w", s.file.Path, err)
 		}
 		s.file.Bytes = s.hw.n
