@@ -208,9 +208,15 @@ func vfWriteTree(t *testing.T, root string, files map[string][]byte) {
 // every stage into version and opens it.
 func vfRun(t *testing.T, dir string, files map[string][]byte, future int, version string) *pipeline.Version {
 	t.Helper()
+	return vfRunConfig(t, dir, files, fmt.Sprintf(vfConfigYAML, future), version)
+}
+
+// vfRunConfig is vfRun with the config text given whole.
+func vfRunConfig(t *testing.T, dir string, files map[string][]byte, config, version string) *pipeline.Version {
+	t.Helper()
 	vfWriteTree(t, filepath.Join(dir, "src"), files)
 	cfgPath := filepath.Join(dir, "hindcast.yaml")
-	if err := os.WriteFile(cfgPath, fmt.Appendf(nil, vfConfigYAML, future), 0o644); err != nil {
+	if err := os.WriteFile(cfgPath, []byte(config), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	cfg, err := pipeline.LoadConfig(cfgPath)
@@ -750,16 +756,201 @@ func TestVerify(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		if got := vfProblems(r); !slices.Equal(got, []string{"quarantine/a.jsonl extra"}) {
-			t.Errorf("unlisted quarantine: problems %q", got)
+		if got := vfProblems(r); !slices.Equal(got, []string{"quarantine/a.jsonl extra"}) || r.Quarantine != nil {
+			t.Errorf("unlisted quarantine: problems %q, quarantine %+v", got, r.Quarantine)
 		}
+		// A quarantine entry names one file; it does not excuse the
+		// whole quarantine/ folder.
 		vfEditManifest(t, d, func(m map[string]any) { m["quarantine"] = map[string]any{"lines": 1} })
 		r, err = Verify(ctx, vfOpen(t, d))
 		if err != nil {
 			t.Fatal(err)
 		}
+		if got, want := vfProblems(r), []string{"quarantine layout", "quarantine/a.jsonl extra"}; !slices.Equal(got, want) {
+			t.Errorf("quarantine without a path: problems %q, want %q", got, want)
+		}
+	})
+}
+
+// vfBaseQuarantine runs the fleet with goals.future 1 and quarantine: true
+// and returns the version and its local folder.
+func vfBaseQuarantine(t *testing.T) (*pipeline.Version, string) {
+	t.Helper()
+	dir := t.TempDir()
+	v := vfRunConfig(t, dir, vfFleet(), fmt.Sprintf(vfConfigYAML, 1)+"quarantine: true\n", "v1")
+	return v, filepath.Join(dir, "out", "inspect-test", "v1")
+}
+
+// TestVerifyQuarantine checks the quarantine file like a shard: the
+// manifest's digest does not cover it (SPEC §5), so only its own bytes,
+// SHA-256 and footer say whether it is the file the run wrote.
+func TestVerifyQuarantine(t *testing.T) {
+	ctx := context.Background()
+	base, dir := vfBaseQuarantine(t)
+	q := pipeline.QuarantinePath
+	if base.Manifest.Quarantine == nil || base.Manifest.Quarantine.Path != q {
+		t.Fatalf("manifest quarantine %+v, want a file at %s", base.Manifest.Quarantine, q)
+	}
+
+	t.Run("clean", func(t *testing.T) {
+		r, err := Verify(ctx, base)
+		if err != nil {
+			t.Fatal(err)
+		}
 		if !r.OK() {
-			t.Errorf("listed quarantine: problems %q", vfProblems(r))
+			t.Fatalf("clean version with quarantine has problems %q", vfProblems(r))
+		}
+		b, err := os.ReadFile(filepath.Join(dir, q))
+		if err != nil {
+			t.Fatal(err)
+		}
+		// The fleet drops 5 lines, one per reason (see vfFleet); the
+		// duplicate object's lines are not counted, so not quarantined.
+		want := VerifyFile{Path: q, Present: true, Bytes: int64(len(b)), SHA256: fmt.Sprintf("%x", sha256.Sum256(b)), Rows: 5, OK: true}
+		if r.Quarantine == nil || *r.Quarantine != want {
+			t.Errorf("quarantine %+v, want %+v", r.Quarantine, want)
+		}
+		var shards int64
+		for _, f := range r.Files {
+			shards += f.Bytes
+		}
+		if r.Bytes != shards+int64(len(b)) {
+			t.Errorf("bytes hashed %d, want shards %d + quarantine %d", r.Bytes, shards, len(b))
+		}
+		var buf bytes.Buffer
+		if err := r.WriteText(&buf); err != nil {
+			t.Fatal(err)
+		}
+		for _, line := range []string{
+			fmt.Sprintf("quarantine %s: %s, 5 rows\n", q, shBytes(int64(len(b)))),
+			"OK: the version matches its manifest\n",
+		} {
+			if !strings.Contains(buf.String(), line) {
+				t.Errorf("text lacks %q:\n%s", line, buf.String())
+			}
+		}
+	})
+
+	edit := func(f func(q map[string]any)) func(t *testing.T, dir string) {
+		return func(t *testing.T, dir string) {
+			vfEditManifest(t, dir, func(m map[string]any) { f(m["quarantine"].(map[string]any)) })
+		}
+	}
+	cases := []struct {
+		name   string
+		damage func(t *testing.T, dir string)
+		want   []string
+		detail string // of the first problem, when set
+	}{
+		{"four bytes overwritten", func(t *testing.T, dir string) {
+			// Bytes 4–7 follow the leading "PAR1": the first page, not
+			// the footer, so the file still opens with its 5 rows.
+			p := filepath.Join(dir, q)
+			b, _ := os.ReadFile(p)
+			copy(b[4:8], []byte{0xde, 0xad, 0xbe, 0xef})
+			if err := os.WriteFile(p, b, 0o644); err != nil {
+				t.Fatal(err)
+			}
+		}, []string{q + " sha256"}, ""},
+		{"truncated", func(t *testing.T, dir string) {
+			p := filepath.Join(dir, q)
+			b, _ := os.ReadFile(p)
+			if err := os.WriteFile(p, b[:len(b)/2], 0o644); err != nil {
+				t.Fatal(err)
+			}
+		}, []string{q + " bytes", q + " footer", q + " sha256"}, ""},
+		{"missing", func(t *testing.T, dir string) {
+			if err := os.Remove(filepath.Join(dir, q)); err != nil {
+				t.Fatal(err)
+			}
+		}, []string{q + " missing"}, "the manifest's quarantine file, not in the folder"},
+		{"extra file under quarantine/", func(t *testing.T, dir string) {
+			vfWriteTree(t, dir, map[string][]byte{"quarantine/extra.bin": []byte("stray")})
+		}, []string{"quarantine/extra.bin extra"}, "in the folder (5 bytes), not in the manifest"},
+		{"rows edited", edit(func(q map[string]any) { q["rows"] = 6 }),
+			[]string{q + " rows"}, "footer says 5 rows, manifest 6"},
+		{"sha256 edited", edit(func(q map[string]any) { q["sha256"] = strings.Repeat("0", 64) }),
+			[]string{q + " sha256"}, ""},
+		{"bytes edited", edit(func(q map[string]any) { q["bytes"] = 1 }),
+			[]string{q + " bytes"}, ""},
+		{"path edited", edit(func(q map[string]any) { q["path"] = "quarantine/part-00001.parquet" }),
+			// Listed elsewhere: not the pipeline's path, not in the folder,
+			// and the file that is there is no longer listed.
+			[]string{q + " extra", "quarantine/part-00001.parquet layout", "quarantine/part-00001.parquet missing"}, ""},
+		{"a shard in its place, manifest updated to match", func(t *testing.T, dir string) {
+			// Bytes, SHA-256 and rows all agree: only the footer's table
+			// says this is not a quarantine file.
+			var shard string
+			for _, f := range base.Manifest.Files {
+				if f.Table == "frames" {
+					shard = f.Path
+					break
+				}
+			}
+			b, err := os.ReadFile(filepath.Join(dir, shard))
+			if err != nil {
+				t.Fatal(err)
+			}
+			vfWriteTree(t, dir, map[string][]byte{q: b})
+			edit(func(qm map[string]any) {
+				for _, f := range base.Manifest.Files {
+					if f.Path == shard {
+						qm["rows"], qm["bytes"], qm["sha256"] = f.Rows, f.Bytes, f.SHA256
+					}
+				}
+			})(t, dir)
+		}, []string{q + " footer_metadata"}, `footer table "frames", manifest "quarantine"`},
+		{"quarantine removed from the manifest", func(t *testing.T, dir string) {
+			vfEditManifest(t, dir, func(m map[string]any) { m["quarantine"] = nil })
+		}, []string{q + " extra"}, ""},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			d := vfCopy(t, dir)
+			c.damage(t, d)
+			r, err := Verify(ctx, vfOpen(t, d))
+			if err != nil {
+				t.Fatalf("Verify: %v", err)
+			}
+			if got := vfProblems(r); r.OK() || !slices.Equal(got, c.want) {
+				t.Fatalf("problems %q, want %q\n%+v", got, c.want, r.Problems)
+			}
+			if c.detail != "" && r.Problems[0].Detail != c.detail {
+				t.Errorf("detail %q, want %q", r.Problems[0].Detail, c.detail)
+			}
+			var buf bytes.Buffer
+			if err := r.WriteText(&buf); err != nil {
+				t.Fatal(err)
+			}
+			word := "problems"
+			if len(c.want) == 1 {
+				word = "problem"
+			}
+			if !strings.Contains(buf.String(), fmt.Sprintf("FAILED: %d %s\n", len(c.want), word)) ||
+				!strings.Contains(buf.String(), r.Problems[0].Subject) {
+				t.Errorf("text:\n%s", buf.String())
+			}
+		})
+	}
+
+	t.Run("missing entry", func(t *testing.T) {
+		d := vfCopy(t, dir)
+		if err := os.Remove(filepath.Join(d, q)); err != nil {
+			t.Fatal(err)
+		}
+		r, err := Verify(ctx, vfOpen(t, d))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if want := (VerifyFile{Path: q, Rows: -1}); r.Quarantine == nil || *r.Quarantine != want {
+			t.Errorf("missing quarantine reported as %+v, want %+v", r.Quarantine, want)
+		}
+		var buf bytes.Buffer
+		if err := r.WriteText(&buf); err != nil {
+			t.Fatal(err)
+		}
+		if line := "quarantine " + q + ": not found\n"; !strings.Contains(buf.String(), line) {
+			t.Errorf("text lacks %q:\n%s", line, buf.String())
 		}
 	})
 }

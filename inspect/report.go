@@ -60,13 +60,16 @@ func Report(v *pipeline.Version, w io.Writer) error {
 
 	offsets := map[string]map[int]int64{}
 	reached := map[string]map[int]int64{}
-	for s, byOff := range m.Offsets {
-		if offsets[s], err = rpOffsetCounts(byOff); err != nil {
+	// Maps are read in key order here and below: Go randomizes map order,
+	// and a float summed in another order can change in its last digit, so
+	// one version would not always give the same page (nor the same error).
+	for _, s := range rpSortedKeys(m.Offsets) {
+		if offsets[s], err = rpOffsetCounts(m.Offsets[s]); err != nil {
 			return fmt.Errorf("report: goal_offsets[%s]: %w", s, err)
 		}
 	}
-	for s, byOff := range m.Reached {
-		if reached[s], err = rpOffsetCounts(byOff); err != nil {
+	for _, s := range rpSortedKeys(m.Reached) {
+		if reached[s], err = rpOffsetCounts(m.Reached[s]); err != nil {
 			return fmt.Errorf("report: goal_reached[%s]: %w", s, err)
 		}
 	}
@@ -193,7 +196,8 @@ func rpStrategies(cfg rpConfig, offsets map[string]map[int]int64) []string {
 // one keyed by the offset.
 func rpOffsetCounts(byOff map[string]int64) (map[int]int64, error) {
 	out := make(map[int]int64, len(byOff))
-	for k, n := range byOff {
+	for _, k := range rpSortedKeys(byOff) { // in order: the first bad key is the one named
+		n := byOff[k]
 		off, err := strconv.Atoi(k)
 		if err != nil {
 			return nil, fmt.Errorf("offset %q is not an integer", k)
@@ -240,8 +244,10 @@ func rpExpectedOffsets(steps map[string]map[string]int64, strategy string, gamma
 	}
 	lengths := map[int]float64{}
 	maxT := 0
-	for emb, byT := range steps {
-		for key, c := range byT {
+	for _, emb := range rpSortedKeys(steps) {
+		byT := steps[emb]
+		for _, key := range rpSortedKeys(byT) {
+			c := byT[key]
 			T, err := strconv.Atoi(key)
 			if err != nil || T < 1 {
 				return nil, fmt.Errorf("episode_steps[%s]: %q is not a step count", emb, key)
@@ -258,7 +264,8 @@ func rpExpectedOffsets(steps map[string]map[string]int64, strategy string, gamma
 	}
 	m := make([]float64, maxT) // m[n], n = 1 … maxT−1
 	var total float64
-	for T, c := range lengths {
+	for _, T := range rpSortedInts(lengths) {
+		c := lengths[T]
 		for j := 1; j <= T-1; j++ {
 			m[min(j, horizon)] += c
 		}
@@ -292,11 +299,16 @@ func rpExpectedOffsets(steps map[string]map[string]int64, strategy string, gamma
 
 // rpTotalVariation is ½ Σ_k |observed share − expected share|, over the
 // offsets ≥ 1 of either: 0 for a perfect match, 1 for disjoint laws.
+// The counts are summed as integers and the terms in offset order, so the
+// result does not depend on the map's iteration order.
 func rpTotalVariation(obs map[int]int64, exp []float64) float64 {
-	var n float64
-	for k, c := range obs {
+	var n, beyond int64 // goals at offsets ≥ 1; those the law gives no share
+	for _, k := range rpSortedInts(obs) {
 		if k >= 1 {
-			n += float64(c)
+			n += obs[k]
+			if k >= len(exp) {
+				beyond += obs[k]
+			}
 		}
 	}
 	if n == 0 {
@@ -304,13 +316,9 @@ func rpTotalVariation(obs map[int]int64, exp []float64) float64 {
 	}
 	var tv float64
 	for k := 1; k < len(exp); k++ {
-		tv += math.Abs(float64(obs[k])/n - exp[k])
+		tv += math.Abs(float64(obs[k])/float64(n) - exp[k])
 	}
-	for k, c := range obs {
-		if k >= len(exp) {
-			tv += float64(c) / n
-		}
-	}
+	tv += float64(beyond) / float64(n)
 	return tv / 2
 }
 
@@ -672,7 +680,8 @@ func rpEpisodeHistogram(emb string, byT map[string]int64) (template.HTML, error)
 	}
 	var n, steps int64
 	lo, hi := math.MaxInt, 0
-	for T, c := range lengths {
+	for _, T := range rpSortedInts(lengths) {
+		c := lengths[T]
 		if c <= 0 {
 			continue
 		}
@@ -694,8 +703,8 @@ func rpEpisodeHistogram(emb string, byT map[string]int64) (template.HTML, error)
 	width := max(int(rpNiceStep(float64(hi-lo+1)/float64(target))), 1)
 	start := lo / width * width
 	bins := make([]int64, (hi-start)/width+1)
-	for T, c := range lengths {
-		if c > 0 {
+	for _, T := range rpSortedInts(lengths) {
+		if c := lengths[T]; c > 0 {
 			bins[(T-start)/width] += c
 		}
 	}
@@ -870,17 +879,17 @@ func rpStackedBars(plot, title, sub, what string, rows []rpStackRow) template.HT
 func rpOffsetPlot(strategy string, obs map[int]int64, exp []float64, expErr error) template.HTML {
 	var n int64
 	maxK := len(exp) - 1
-	for k, c := range obs {
+	for _, k := range rpSortedInts(obs) {
 		if k >= 1 {
-			n += c
+			n += obs[k]
 			maxK = max(maxK, k)
 		}
 	}
 	maxK = max(maxK, 1)
 	var top float64
-	for k, c := range obs {
+	for _, k := range rpSortedInts(obs) {
 		if k >= 1 {
-			top = max(top, float64(c)/float64(n))
+			top = max(top, float64(obs[k])/float64(n))
 		}
 	}
 	for _, e := range exp {
@@ -945,9 +954,9 @@ func rpRewardPlot(strategies []string, offsets, reached map[string]map[int]int64
 	var items []rpLegendItem
 	for _, st := range strategies {
 		var n, r int64
-		for k, c := range offsets[st] {
+		for _, k := range rpSortedInts(offsets[st]) {
 			if k >= 1 {
-				n += c
+				n += offsets[st][k]
 				r += reached[st][k]
 			}
 		}

@@ -366,6 +366,45 @@ func TestReportTotalVariation(t *testing.T) {
 	}
 }
 
+// rpTOrderManifest is a manifest whose page depends on the order the
+// report reads its maps in, if it reads them in map order: with future
+// goals on episodes of 2 steps the law puts every goal at offset 1, so
+// offsets 2…8 lie beyond it and each adds its share to the total
+// variation. Of 320 goals 42 are at offset 1, so TV = ½(278/320 + 278/320)
+// = 139/160 = 0.86875 exactly, on a rounding boundary of the page's %.4f:
+// sums of the shares in different orders fall on either side of it
+// (0.8687 or 0.8688 — found by summing these shares in shuffled orders).
+func rpTOrderManifest() *pipeline.Manifest {
+	return &pipeline.Manifest{
+		Format: pipeline.ManifestFormat, Dataset: "order", Version: "v1",
+		Config:       json.RawMessage(`{"goals":{"future":1,"geometric":0,"final":0,"negative":0,"gamma":0.5,"horizon":0}}`),
+		Funnel:       pipeline.Funnel{Objects: 1, Lines: 20, Frames: 20, Episodes: 10, Pairs: 320},
+		EpisodeSteps: map[string]map[string]int64{"e": {"2": 10}},
+		Offsets: map[string]map[string]int64{"future": {
+			"1": 42, "2": 33, "3": 47, "4": 34, "5": 46, "6": 49, "7": 48, "8": 21}},
+		Reached: map[string]map[string]int64{"future": {"1": 40, "2": 3}},
+	}
+}
+
+// The same version gives the same page, byte for byte, however Go orders
+// its maps: the report is built many times in one process (map order is
+// drawn anew on every range) and every page must equal the first.
+func TestReportDeterministic(t *testing.T) {
+	v := &pipeline.Version{Manifest: rpTOrderManifest()}
+	first := rpTReport(t, v)
+	for i := range 200 {
+		if page := rpTReport(t, v); page != first {
+			t.Fatalf("build %d differs from the first page", i+2)
+		}
+	}
+	// The total variation as rpTotalVariation sums it: the integer counts
+	// first, then the shares in offset order.
+	sub := rpTFind(t, rpTPlots(t, first), "goal-offsets", "future").texts("sub")
+	if want := "320 goals · total variation from the expected law 0.8688"; len(sub) != 1 || sub[0] != want {
+		t.Errorf("subtitle %q, want %q", sub, want)
+	}
+}
+
 // ---- plots from hand-made manifests ----
 
 func TestReportEpisodeBins(t *testing.T) {
@@ -552,6 +591,11 @@ func TestReportDemo(t *testing.T) {
 	v := rpTDemo(t)
 	m := v.Manifest
 	page := rpTReport(t, v)
+	for i := range 20 { // one version, one page (see TestReportDeterministic)
+		if again := rpTReport(t, v); again != page {
+			t.Fatalf("report build %d of the demo version differs from the first", i+2)
+		}
+	}
 	rpTNoNetwork(t, page)
 	if strings.Contains(page, "http://") || strings.Contains(page, "https://") {
 		t.Errorf("the demo report names an http(s) URL")

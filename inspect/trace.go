@@ -1054,13 +1054,7 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 		ew.printf("files:\n")
 	}
 	for _, f := range r.Files {
-		var rs []string
-		n := int64(0)
-		for _, x := range f.Rows {
-			rs = append(rs, fmt.Sprintf("[%d, %d)", x[0], x[1]))
-			n += x[1] - x[0]
-		}
-		ew.printf("  %s  %d rows: %s\n", f.Path, n, strings.Join(rs, " "))
+		ew.printf("  %s  %s\n", f.Path, trRowsText(f.Rows))
 		if r.Kind == TraceKindSource {
 			ew.printf("    episodes: %s\n", strings.Join(f.Episodes, ", "))
 		}
@@ -1088,6 +1082,37 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 	}
 	ew.printf("read %d of %d bytes of %d files in %d requests\n", r.Cost.Bytes, r.Cost.FileBytes, r.Cost.Files, r.Cost.Requests)
 	return ew.err
+}
+
+// trTextRanges is how many row ranges of a file the text shows: a source
+// whose frames are spread over a pairs file can touch hundreds of ranges,
+// which on one line say nothing to a reader; --json keeps them all.
+const trTextRanges = 5
+
+// trRowsText summarizes a file's row ranges for a reader: the number of
+// rows and of ranges, the first trTextRanges ranges, and how many more.
+func trRowsText(ranges [][2]int64) string {
+	var n int64
+	for _, x := range ranges {
+		n += x[1] - x[0]
+	}
+	var b strings.Builder
+	fmt.Fprintf(&b, "%s in %s:", trCount(n, "row", "rows"), trCount(int64(len(ranges)), "range", "ranges"))
+	for _, x := range ranges[:min(len(ranges), trTextRanges)] {
+		fmt.Fprintf(&b, " [%d, %d)", x[0], x[1])
+	}
+	if more := len(ranges) - trTextRanges; more > 0 {
+		fmt.Fprintf(&b, " … and %s", trCount(int64(more), "more range", "more ranges"))
+	}
+	return b.String()
+}
+
+// trCount writes n and the noun in the number it needs.
+func trCount(n int64, one, many string) string {
+	if n == 1 {
+		return "1 " + one
+	}
+	return fmt.Sprintf("%d %s", n, many)
 }
 
 // trErrWriter keeps the first write error, so text output is written

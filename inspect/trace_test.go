@@ -779,7 +779,7 @@ func TestTraceText(t *testing.T) {
 		"  step 0: a.jsonl line 1\n",
 		"  steps 1-7: a.jsonl lines 3-9\n",
 		"  steps 8-29: a.jsonl lines 11-32\n",
-		fmt.Sprintf("  %s  30 rows: [%d, %d)\n", fx.lay.path("frames", e1), fx.lay.framesAt[e1], fx.lay.framesAt[e1]+30),
+		fmt.Sprintf("  %s  30 rows in 1 range: [%d, %d)\n", fx.lay.path("frames", e1), fx.lay.framesAt[e1], fx.lay.framesAt[e1]+30),
 	} {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("text lacks %q:\n%s", want, b.String())
@@ -846,6 +846,71 @@ func TestTraceText(t *testing.T) {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("text lacks %q:\n%s", want, b.String())
 		}
+	}
+}
+
+// A source's rows in a pairs file can be hundreds of ranges: the text
+// shows per file the rows, the ranges and the first trTextRanges (5) of
+// them, and --json keeps every range.
+func TestTraceTextRangesCapped(t *testing.T) {
+	var many [][2]int64 // 8 ranges of 2 rows: [0, 2) [10, 12) … [70, 72)
+	for i := int64(0); i < 8; i++ {
+		many = append(many, [2]int64{10 * i, 10*i + 2})
+	}
+	res := &TraceResult{
+		Query: TraceQuery{Source: "a.jsonl"}, Kind: TraceKindSource, Dataset: "d", Version: "v1",
+		Source: &TraceSource{Key: "a.jsonl", URI: "file:///logs/a.jsonl", Lines: 9, Kept: 1},
+		Files: []TraceFile{
+			{Path: "frames/split=train/part-00000.parquet", Table: "frames", Split: "train",
+				Rows: [][2]int64{{3, 4}}, Episodes: []string{"u-1"}},
+			{Path: "frames/split=val/part-00001.parquet", Table: "frames", Split: "val", Partition: 1,
+				Rows: [][2]int64{{0, 3}, {5, 6}}, Episodes: []string{"u-2", "u-3"}},
+			{Path: "pairs/split=test/part-00000.parquet", Table: "pairs", Split: "test",
+				Rows: many[:5], Episodes: []string{"u-4"}},
+			{Path: "pairs/split=train/part-00000.parquet", Table: "pairs", Split: "train",
+				Rows: many, Episodes: []string{"u-1"}},
+			{Path: "pairs/split=val/part-00001.parquet", Table: "pairs", Split: "val", Partition: 1,
+				Rows: many[:6], Episodes: []string{"u-2"}},
+		},
+		Episodes: []TraceEpisode{},
+		Cost:     TraceCost{Files: 5, FileBytes: 1000, Bytes: 100, Requests: 7},
+	}
+	var b strings.Builder
+	if err := res.WriteText(&b); err != nil {
+		t.Fatal(err)
+	}
+	want := "source a.jsonl (file:///logs/a.jsonl)\n" +
+		"  9 lines, 0 frames kept in 0 episodes\n" +
+		"files:\n" +
+		"  frames/split=train/part-00000.parquet  1 row in 1 range: [3, 4)\n" +
+		"    episodes: u-1\n" +
+		"  frames/split=val/part-00001.parquet  4 rows in 2 ranges: [0, 3) [5, 6)\n" +
+		"    episodes: u-2, u-3\n" +
+		"  pairs/split=test/part-00000.parquet  10 rows in 5 ranges: [0, 2) [10, 12) [20, 22) [30, 32) [40, 42)\n" +
+		"    episodes: u-4\n" +
+		"  pairs/split=train/part-00000.parquet  16 rows in 8 ranges: [0, 2) [10, 12) [20, 22) [30, 32) [40, 42) … and 3 more ranges\n" +
+		"    episodes: u-1\n" +
+		"  pairs/split=val/part-00001.parquet  12 rows in 6 ranges: [0, 2) [10, 12) [20, 22) [30, 32) [40, 42) … and 1 more range\n" +
+		"    episodes: u-2\n" +
+		"read 100 of 1000 bytes of 5 files in 7 requests\n"
+	if b.String() != want {
+		t.Errorf("text\n%s\nwant\n%s", b.String(), want)
+	}
+
+	j, err := json.Marshal(res)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var doc struct {
+		Files []struct {
+			Rows [][2]int64 `json:"rows"`
+		} `json:"files"`
+	}
+	if err := json.Unmarshal(j, &doc); err != nil {
+		t.Fatal(err)
+	}
+	if len(doc.Files) != 5 || !reflect.DeepEqual(doc.Files[3].Rows, many) {
+		t.Errorf("JSON files %s, want the pairs train file with all 8 ranges", j)
 	}
 }
 

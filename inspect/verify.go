@@ -9,7 +9,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"strings"
 
 	"github.com/parquet-go/parquet-go"
 	"golang.org/x/sync/errgroup"
@@ -28,9 +27,13 @@ type VerifyResult struct {
 	Bytes int64 `json:"bytes"`
 	// Digest is the manifest's digest; DigestComputed is pipeline.Digest
 	// over the manifest's config_sha256, sources and files.
-	Digest         string          `json:"digest"`
-	DigestComputed string          `json:"digest_computed"`
-	Problems       []VerifyProblem `json:"problems"`
+	Digest         string `json:"digest"`
+	DigestComputed string `json:"digest_computed"`
+	// Quarantine is the manifest's quarantine file (config quarantine:
+	// true) as found in the folder, or null when the manifest lists none.
+	// It is not one of the manifest's files, so it is kept apart from them.
+	Quarantine *VerifyFile     `json:"quarantine"`
+	Problems   []VerifyProblem `json:"problems"`
 }
 
 // VerifyFile is one manifest file as found in the folder. Rows is -1 when
@@ -65,10 +68,14 @@ const vfFooterBuffer = 64 << 10
 
 // Verify checks a version against its manifest: every file's SHA-256
 // (streamed), size and row count (from the Parquet footer, with the
-// footer's key-value metadata), the funnel's conservation laws (SPEC §5),
-// the digest and config_sha256 recomputed from the manifest, and that the
-// folder holds exactly the manifest's files. It returns an error only when
-// storage fails; everything wrong with the version is a problem in the result.
+// footer's key-value metadata), the same for the quarantine file when the
+// manifest lists one, the funnel's conservation laws (SPEC §5), the digest
+// and config_sha256 recomputed from the manifest, and that the folder holds
+// exactly the manifest's files and quarantine file. The digest does not
+// cover the quarantine (SPEC §5 defines it over config_sha256, sources and
+// files), so hashing it here is the only thing that catches a changed one.
+// It returns an error only when storage fails; everything wrong with the
+// version is a problem in the result.
 func Verify(ctx context.Context, v *pipeline.Version) (*VerifyResult, error) {
 	m := v.Manifest
 	r := &VerifyResult{Dataset: m.Dataset, Version: m.Version, URI: v.URI, Digest: m.Digest,
@@ -105,6 +112,26 @@ func Verify(ctx context.Context, v *pipeline.Version) (*VerifyResult, error) {
 			return nil
 		})
 	}
+	var qProbs []VerifyProblem
+	if q := m.Quarantine; q != nil {
+		r.Quarantine = &VerifyFile{Path: q.Path, Rows: -1}
+		qProbs = vfQuarantineLayout(q)
+		if _, ok := listed[q.Path]; !ok {
+			if q.Path != "" {
+				qProbs = append(qProbs, VerifyProblem{q.Path, "missing", "the manifest's quarantine file, not in the folder"})
+			}
+		} else {
+			g.Go(func() error {
+				vf, ps, err := vfCheckObject(gctx, v.Store, q.Path, q.Bytes, q.SHA256, q.Rows, [][2]string{
+					{"dataset", m.Dataset}, {"table", "quarantine"}, {"config_sha256", m.ConfigSHA256}})
+				if err != nil {
+					return err
+				}
+				*r.Quarantine, qProbs = vf, append(qProbs, ps...)
+				return nil
+			})
+		}
+	}
 	if err := g.Wait(); err != nil {
 		return nil, fmt.Errorf("verify %s: %w", v.URI, err)
 	}
@@ -119,12 +146,18 @@ func Verify(ctx context.Context, v *pipeline.Version) (*VerifyResult, error) {
 		r.Problems = append(r.Problems, probs[i]...)
 	}
 
-	// Files in the folder the manifest does not know.
-	quarantine := vfHasQuarantine(v.Raw)
+	if r.Quarantine != nil {
+		r.Quarantine.OK = len(qProbs) == 0
+		r.Bytes += r.Quarantine.Bytes
+		r.Problems = append(r.Problems, qProbs...)
+	}
+
+	// Files in the folder the manifest does not know. Under quarantine/
+	// only the quarantine file the manifest lists belongs to the version.
 	for _, k := range keys {
 		switch {
 		case seen[k], k == pipeline.ManifestName:
-		case quarantine && strings.HasPrefix(k, "quarantine/"):
+		case m.Quarantine != nil && k == m.Quarantine.Path:
 		default:
 			r.Problems = append(r.Problems, VerifyProblem{k, "extra", fmt.Sprintf("in the folder (%d bytes), not in the manifest", listed[k].Size)})
 		}
@@ -139,9 +172,10 @@ func Verify(ctx context.Context, v *pipeline.Version) (*VerifyResult, error) {
 	return r, nil
 }
 
-// vfCheckFile hashes one file and reads its footer.
+// vfCheckFile checks one manifest file: its path against the layout of
+// SPEC §4, then its content (vfCheckObject) with the footer metadata a
+// shard carries.
 func vfCheckFile(ctx context.Context, st pipeline.Store, m *pipeline.Manifest, f pipeline.File) (VerifyFile, []VerifyProblem, error) {
-	vf := VerifyFile{Path: f.Path, Rows: -1}
 	var ps []VerifyProblem
 	add := func(check, format string, a ...any) {
 		ps = append(ps, VerifyProblem{f.Path, check, fmt.Sprintf(format, a...)})
@@ -152,30 +186,62 @@ func vfCheckFile(ctx context.Context, st pipeline.Store, m *pipeline.Manifest, f
 	if f.Rows <= 0 {
 		add("empty", "the manifest gives %d rows; no empty file is written (SPEC §4)", f.Rows)
 	}
+	// The footer's key-value metadata (SPEC §4) names what the file is.
+	vf, more, err := vfCheckObject(ctx, st, f.Path, f.Bytes, f.SHA256, f.Rows, [][2]string{
+		{"dataset", m.Dataset}, {"table", f.Table}, {"split", f.Split},
+		{"partition", fmt.Sprint(f.Partition)}, {"config_sha256", m.ConfigSHA256}})
+	if err != nil {
+		return vf, nil, err
+	}
+	return vf, append(ps, more...), nil
+}
 
-	rc, err := st.Open(ctx, f.Path, 0)
+// vfQuarantineLayout checks where the manifest puts its quarantine file:
+// the pipeline writes it at pipeline.QuarantinePath, and a path elsewhere
+// would let the file pass for one thing while the folder holds another.
+func vfQuarantineLayout(q *pipeline.QuarantineFile) []VerifyProblem {
+	switch {
+	case q.Path == "":
+		return []VerifyProblem{{"quarantine", "layout", "the manifest's quarantine has no path"}}
+	case q.Path != pipeline.QuarantinePath:
+		return []VerifyProblem{{q.Path, "layout", fmt.Sprintf("the quarantine file is written at %s", pipeline.QuarantinePath)}}
+	}
+	return nil
+}
+
+// vfCheckObject hashes one Parquet object of the version and reads its
+// footer: size, SHA-256 and row count against what the manifest records,
+// and each footer key-value pair of meta ({key, value}) present with that
+// value. Shards and the quarantine file are checked alike.
+func vfCheckObject(ctx context.Context, st pipeline.Store, path string, wantBytes int64, wantSHA string, wantRows int64, meta [][2]string) (VerifyFile, []VerifyProblem, error) {
+	vf := VerifyFile{Path: path, Rows: -1}
+	var ps []VerifyProblem
+	add := func(check, format string, a ...any) {
+		ps = append(ps, VerifyProblem{path, check, fmt.Sprintf(format, a...)})
+	}
+	rc, err := st.Open(ctx, path, 0)
 	if errors.Is(err, pipeline.ErrNotFound) {
 		add("missing", "listed in the manifest, gone from the folder")
 		return vf, ps, nil
 	}
 	if err != nil {
-		return vf, nil, err
+		return vf, nil, fmt.Errorf("open %s: %w", path, err)
 	}
 	h := sha256.New()
 	n, err := io.Copy(h, rc)
 	rc.Close()
 	if err != nil {
-		return vf, nil, fmt.Errorf("read %s: %w", f.Path, err)
+		return vf, nil, fmt.Errorf("read %s: %w", path, err)
 	}
 	vf.Present, vf.Bytes, vf.SHA256 = true, n, hex.EncodeToString(h.Sum(nil))
-	if n != f.Bytes {
-		add("bytes", "%d bytes in the folder, %d in the manifest", n, f.Bytes)
+	if n != wantBytes {
+		add("bytes", "%d bytes in the folder, %d in the manifest", n, wantBytes)
 	}
-	if vf.SHA256 != f.SHA256 {
-		add("sha256", "content SHA-256 %s, manifest %s", vf.SHA256, f.SHA256)
+	if vf.SHA256 != wantSHA {
+		add("sha256", "content SHA-256 %s, manifest %s", vf.SHA256, wantSHA)
 	}
 
-	ra := &vfReaderAt{ctx: ctx, store: st, key: f.Path, size: n}
+	ra := &vfReaderAt{ctx: ctx, store: st, key: path, size: n}
 	pf, err := parquet.OpenFile(ra, n, parquet.SkipPageIndex(true), parquet.SkipBloomFilters(true),
 		parquet.OptimisticRead(true), parquet.ReadBufferSize(vfFooterBuffer))
 	if ra.err != nil {
@@ -183,19 +249,17 @@ func vfCheckFile(ctx context.Context, st pipeline.Store, m *pipeline.Manifest, f
 			add("missing", "gone from the folder while being read")
 			return vf, ps, nil
 		}
-		return vf, nil, fmt.Errorf("read footer of %s: %w", f.Path, ra.err)
+		return vf, nil, fmt.Errorf("read footer of %s: %w", path, ra.err)
 	}
 	if err != nil {
 		add("footer", "not a readable Parquet file: %v", err)
 		return vf, ps, nil
 	}
 	vf.Rows = pf.NumRows()
-	if vf.Rows != f.Rows {
-		add("rows", "footer says %d rows, manifest %d", vf.Rows, f.Rows)
+	if vf.Rows != wantRows {
+		add("rows", "footer says %d rows, manifest %d", vf.Rows, wantRows)
 	}
-	// The footer's key-value metadata (SPEC §4) names what the file is.
-	for _, kv := range [][2]string{{"dataset", m.Dataset}, {"table", f.Table}, {"split", f.Split},
-		{"partition", fmt.Sprint(f.Partition)}, {"config_sha256", m.ConfigSHA256}} {
+	for _, kv := range meta {
 		got, ok := pf.Lookup(kv[0])
 		switch {
 		case !ok:
@@ -244,17 +308,6 @@ func (r *vfReaderAt) ReadAt(p []byte, off int64) (int, error) {
 		r.err = err
 	}
 	return n, err
-}
-
-// vfHasQuarantine reports a manifest that lists a quarantine (a non-null
-// top-level "quarantine"): its quarantine/ folder is then part of the version.
-func vfHasQuarantine(raw []byte) bool {
-	var top map[string]json.RawMessage
-	if json.Unmarshal(raw, &top) != nil {
-		return false
-	}
-	q, ok := top["quarantine"]
-	return ok && string(bytes.TrimSpace(q)) != "null"
 }
 
 // vfManifest checks the manifest against itself: the conservation laws of
@@ -404,6 +457,18 @@ func (r *VerifyResult) WriteText(w io.Writer) error {
 		}
 	}
 	p.printf("files     %d in the manifest, %d found, %s hashed\n", len(r.Files), present, shBytes(r.Bytes))
+	if q := r.Quarantine; q != nil {
+		switch {
+		case q.Path == "":
+			p.printf("quarantine listed without a path\n")
+		case !q.Present:
+			p.printf("quarantine %s: not found\n", q.Path)
+		case q.Rows < 0:
+			p.printf("quarantine %s: %s, footer unreadable\n", q.Path, shBytes(q.Bytes))
+		default:
+			p.printf("quarantine %s: %s, %d rows\n", q.Path, shBytes(q.Bytes), q.Rows)
+		}
+	}
 	if r.DigestComputed == r.Digest {
 		p.printf("digest    %s (recomputed, matches)\n", r.Digest)
 	} else {
