@@ -106,7 +106,7 @@ func (st Goals) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 	}
 	if err := gw.Close(); err != nil {
 		up.Abort()
-		return nil, err
+		return nil, fmt.Errorf("write %s: %w", sum.File, err)
 	}
 	return sum, up.Commit(false)
 }
@@ -297,7 +297,7 @@ func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.Episodes
 	}
 	if err := fr.Err(); err != nil {
 		tmp.Close()
-		return nil, err
+		return nil, fmt.Errorf("read %s: %w", eps.File, err)
 	}
 	if err := bw.Flush(); err != nil {
 		tmp.Close()

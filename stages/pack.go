@@ -455,10 +455,10 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		}
 	}
 	if err := fr.Err(); err != nil {
-		return nil, err
+		return nil, fmt.Errorf("read %s: %w", in.Episodes.File, err)
 	}
 	if err := gr.Err(); err != nil {
-		return nil, err
+		return nil, fmt.Errorf("read %s: %w", in.Goals.File, err)
 	}
 	if haveG {
 		return nil, fmt.Errorf("goal for unknown episode %s", g.Episode)

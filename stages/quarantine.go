@@ -2,6 +2,7 @@ package stages
 
 import (
 	"context"
+	"fmt"
 
 	"hindcast/pipeline"
 	"hindcast/schemas"
@@ -52,7 +53,7 @@ func (q *quarantine) close() (string, error) {
 		return "", q.err
 	}
 	if err := q.w.Close(); err != nil {
-		return "", err
+		return "", fmt.Errorf("write %s: %w", q.key, err)
 	}
 	up := q.up
 	q.up, q.w = nil, nil
