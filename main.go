@@ -35,8 +35,13 @@ const (
 	exitUsage   = 2
 )
 
-// usageError is a command-line or config problem: exit code 2.
-type usageError struct{ err error }
+// usageError is a command-line or config problem: exit code 2. When
+// ParseCommand returns one, cmd names the command whose usage follows the
+// message ("" for the top-level usage: no command was recognised).
+type usageError struct {
+	err error
+	cmd string
+}
 
 func (e usageError) Error() string { return e.err.Error() }
 func (e usageError) Unwrap() error { return e.err }
@@ -73,24 +78,29 @@ type Command struct {
 }
 
 type commandSpec struct {
-	summary string
-	flags   func(fs *flag.FlagSet, c *Command)
+	synopsis string // the usage line, without "hindcast "
+	summary  string
+	flags    func(fs *flag.FlagSet, c *Command)
 }
+
+// commandOrder is the order of the commands in the top-level usage: the
+// pipeline first, then inspection, then the tools.
+var commandOrder = []string{"run", "stage", "commit", "plan", "show", "trace", "verify", "diff", "report", "demo", "bench"}
 
 func commands() map[string]commandSpec {
 	parallel := func(fs *flag.FlagSet, c *Command) {
 		fs.IntVar(&c.Parallel, "parallel", runtime.NumCPU(), "work items processed at once (never changes the output)")
 	}
 	return map[string]commandSpec{
-		"run": {"run every stage and commit a dataset version", func(fs *flag.FlagSet, c *Command) {
+		"run": {"run --config FILE [--version V] [--parallel N]", "run every stage and commit a dataset version", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
 			fs.StringVar(&c.Profile, "cpuprofile", "", "write a CPU profile (runtime/pprof) to this file")
 			parallel(fs, c)
 		}},
-		"stage": {"run one worker's share of one stage (ingest, episodes, goals or pack)", func(fs *flag.FlagSet, c *Command) {
+		"stage": {"stage NAME --config FILE [--worker I/N | --workers N]", "run one worker's share of one stage (ingest, episodes, goals or pack)", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
-			fs.Func("worker", "this worker's share as I/N, I from 0 (default 0/1; I may come from $JOB_COMPLETION_INDEX with --workers N)", func(v string) error {
+			fs.Func("worker", "this worker's share as `I/N`, I from 0 (default 0/1; I may come from $JOB_COMPLETION_INDEX with --workers N)", func(v string) error {
 				var i, n int
 				if _, err := fmt.Sscanf(v, "%d/%d", &i, &n); err != nil || n < 1 || i < 0 || i >= n {
 					return fmt.Errorf("want I/N with 0 <= I < N, got %q", v)
@@ -98,7 +108,7 @@ func commands() map[string]commandSpec {
 				c.Worker, c.Workers = i, n
 				return nil
 			})
-			fs.Func("workers", "how many workers share the stage; this one's index is $JOB_COMPLETION_INDEX", func(v string) error {
+			fs.Func("workers", "how many workers (`N`) share the stage; this one's index is $JOB_COMPLETION_INDEX", func(v string) error {
 				var n int
 				if _, err := fmt.Sscanf(v, "%d", &n); err != nil || n < 1 {
 					return fmt.Errorf("want a count >= 1, got %q", v)
@@ -108,38 +118,38 @@ func commands() map[string]commandSpec {
 			})
 			parallel(fs, c)
 		}},
-		"commit": {"publish a version from the sealed outputs of every stage, manifest last", func(fs *flag.FlagSet, c *Command) {
+		"commit": {"commit --config FILE [--version V]", "publish a version from the sealed outputs of every stage, manifest last", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
 		}},
-		"plan": {"show what a run would do (objects new and cached, partitions to recompute, bytes to read); writes nothing", func(fs *flag.FlagSet, c *Command) {
+		"plan": {"plan --config FILE [--json]", "show what a run would do (objects new and cached, partitions to recompute, bytes to read); writes nothing", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.BoolVar(&c.JSON, "json", false, "print the plan as JSON")
 		}},
-		"show": {"summarise a version: sources, funnel with every drop reason, episodes and pairs, episode lengths, files", func(fs *flag.FlagSet, c *Command) {
+		"show": {"show VERSION [--json]", "summarise a version: sources, funnel with every drop reason, episodes and pairs, episode lengths, files", func(fs *flag.FlagSet, c *Command) {
 			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
 		}},
-		"trace": {"lineage both ways: a source to the files, episodes and rows holding its frames; an episode or a file row back to its sources and lines", func(fs *flag.FlagSet, c *Command) {
+		"trace": {"trace VERSION (--source KEY | --episode ID | --file PATH --row N) [--json]", "lineage both ways: a source to the files, episodes and rows holding its frames; an episode or a file row back to its sources and lines", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Source, "source", "", "a source object: key relative to the source root, or its full URI")
 			fs.StringVar(&c.Episode, "episode", "", "an episode id")
 			fs.StringVar(&c.File, "file", "", "a file of the version, relative to its folder (with --row)")
 			fs.Int64Var(&c.Row, "row", -1, "a 0-based row of --file")
 			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
 		}},
-		"verify": {"recompute every file's SHA-256 and rows, check the funnel and that the folder holds exactly the manifest's files", func(fs *flag.FlagSet, c *Command) {
+		"verify": {"verify VERSION [--json]", "recompute every file's SHA-256 and rows, check the funnel and that the folder holds exactly the manifest's files", func(fs *flag.FlagSet, c *Command) {
 			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
 		}},
-		"diff": {"what changed between two versions: config keys, sources, drop counts, episodes and pairs per split, files", func(fs *flag.FlagSet, c *Command) {
+		"diff": {"diff A B [--json]", "what changed between two versions: config keys, sources, drop counts, episodes and pairs per split, files", func(fs *flag.FlagSet, c *Command) {
 			fs.BoolVar(&c.JSON, "json", false, "print the answer as JSON")
 		}},
-		"report": {"write one self-contained HTML file with plots of a version", func(fs *flag.FlagSet, c *Command) {
+		"report": {"report VERSION [-o report.html]", "write one self-contained HTML file with plots of a version", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Output, "o", "report.html", "the HTML file to write")
 		}},
-		"demo": {"write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
+		"demo": {"demo [--dir DIR]", "write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
 			parallel(fs, c)
 		}},
-		"bench": {"generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
+		"bench": {"bench [--frames N] [--runs K] [--peer BIN]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/bench", "folder for the benchmark fleet and its outputs")
 			fs.IntVar(&c.Frames, "frames", 1000000, "frames in the benchmark fleet")
 			fs.IntVar(&c.Runs, "runs", 3, "timed runs (the median is reported)")
@@ -152,67 +162,93 @@ func commands() map[string]commandSpec {
 	}
 }
 
-const topUsage = `hindcast turns fleet logs into goal-conditioned training shards.
+// topUsage is the help of hindcast as a whole, built from commandOrder so
+// that it cannot drift from the commands' own usage lines.
+func topUsage() string {
+	var b strings.Builder
+	b.WriteString("hindcast turns fleet logs into goal-conditioned training shards.\n\nUsage:\n")
+	cmds := commands()
+	for _, name := range commandOrder {
+		fmt.Fprintf(&b, "  hindcast %s\n", cmds[name].synopsis)
+	}
+	b.WriteString("\nRun \"hindcast COMMAND --help\" for a command's flags.\n" +
+		"Exit codes: 0 success, 1 runtime failure, 2 usage or config error.\n")
+	return b.String()
+}
 
-Usage:
-  hindcast run --config FILE [--version V] [--parallel N]
-  hindcast stage NAME --config FILE [--worker I/N | --workers N]
-  hindcast commit --config FILE [--version V]
-  hindcast plan --config FILE [--json]
-  hindcast show VERSION [--json]
-  hindcast trace VERSION (--source KEY | --episode ID | --file PATH --row N) [--json]
-  hindcast verify VERSION [--json]
-  hindcast diff A B [--json]
-  hindcast report VERSION [-o report.html]
-  hindcast demo [--dir DIR]
-  hindcast bench [--frames N] [--runs K] [--peer BIN]
-
-Run "hindcast COMMAND --help" for a command's flags.
-Exit codes: 0 success, 1 runtime failure, 2 usage or config error.
-`
+// writeCommandUsage writes one command's usage line and flags; with
+// summary, it starts with what the command does (its --help), without it
+// the usage follows an error message that already names the command.
+func writeCommandUsage(w io.Writer, name string, summary bool) {
+	spec := commands()[name]
+	if summary {
+		fmt.Fprintf(w, "hindcast %s: %s\n\n", name, spec.summary)
+	}
+	fmt.Fprintf(w, "Usage:\n  hindcast %s\n\nFlags:\n", spec.synopsis)
+	fs := flag.NewFlagSet("hindcast "+name, flag.ContinueOnError)
+	fs.SetOutput(w)
+	spec.flags(fs, &Command{})
+	fs.PrintDefaults()
+}
 
 // ParseCommand parses a hindcast command line (without the program name).
+// It writes nothing: every problem comes back as a usageError, which Main
+// prints once with the command's usage. stderr is unused and kept so that
+// callers need not change.
 func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 	if len(args) == 0 {
-		return nil, usageError{errors.New("no command given")}
+		return nil, usageError{err: errors.New("no command given")}
 	}
-	if args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
-		return &Command{Name: "help", Help: true}, nil
+	cmds := commands()
+	if args[0] == "-h" || args[0] == "--help" || args[0] == "-help" || args[0] == "help" {
+		switch len(args) {
+		case 1:
+			return &Command{Name: "help", Help: true}, nil
+		case 2:
+			// `hindcast help run` is `hindcast run --help`.
+			if _, ok := cmds[args[1]]; !ok {
+				return nil, usageError{err: fmt.Errorf("help: unknown command %q", args[1])}
+			}
+			return &Command{Name: args[1], Help: true}, nil
+		}
+		return nil, usageError{err: fmt.Errorf("help: want at most one command name, got %q", args[1:])}
 	}
-	spec, ok := commands()[args[0]]
+	spec, ok := cmds[args[0]]
 	if !ok {
-		return nil, usageError{fmt.Errorf("unknown command %q", args[0])}
+		return nil, usageError{err: fmt.Errorf("unknown command %q", args[0])}
 	}
 	c := &Command{Name: args[0], Workers: 1, Parallel: 1}
+	fail := func(format string, a ...any) (*Command, error) {
+		return nil, usageError{err: fmt.Errorf(format, a...), cmd: c.Name}
+	}
 	fs := flag.NewFlagSet("hindcast "+args[0], flag.ContinueOnError)
-	fs.SetOutput(stderr)
+	// The flag package would print the error and the flags itself, and Main
+	// prints them again; keep it quiet and let Main speak once.
+	fs.SetOutput(io.Discard)
+	fs.Usage = func() {}
 	spec.flags(fs, c)
 	rest := args[1:]
 	if c.Name == "stage" && len(rest) > 0 && !strings.HasPrefix(rest[0], "-") {
 		c.Stage, rest = rest[0], rest[1:]
 	}
-	// Inspection commands take their versions first: `hindcast show V --json`.
+	// Inspection commands take their versions as arguments, before or
+	// between the flags: `hindcast show V --json`, `hindcast diff A --json B`.
+	// Parse stops at each argument, which is taken and parsing resumed.
 	wantVersions := map[string]int{"show": 1, "trace": 1, "verify": 1, "diff": 2, "report": 1}[c.Name]
-	for len(c.Versions) < wantVersions && len(rest) > 0 && !strings.HasPrefix(rest[0], "-") {
-		c.Versions, rest = append(c.Versions, rest[0]), rest[1:]
-	}
-	fs.Usage = func() {
-		fmt.Fprintf(stderr, "hindcast %s: %s\n\nFlags:\n", args[0], spec.summary)
-		fs.PrintDefaults()
-	}
-	if err := fs.Parse(rest); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			c.Help = true
-			return c, nil
-		}
-		return nil, usageError{err}
-	}
-	for len(c.Versions) < wantVersions && fs.NArg() > 0 {
+	err := fs.Parse(rest)
+	for err == nil && len(c.Versions) < wantVersions && fs.NArg() > 0 {
 		c.Versions = append(c.Versions, fs.Arg(0))
-		fs.Parse(fs.Args()[1:])
+		err = fs.Parse(fs.Args()[1:])
+	}
+	if errors.Is(err, flag.ErrHelp) {
+		c.Help = true
+		return c, nil
+	}
+	if err != nil {
+		return nil, usageError{err: err, cmd: c.Name}
 	}
 	if len(c.Versions) < wantVersions {
-		return nil, usageError{fmt.Errorf("%s: want %d version location(s) (a folder or an s3:// URI)", c.Name, wantVersions)}
+		return fail("want %s (a folder or an s3:// URI)", countOf(wantVersions, "version location", "version locations"))
 	}
 	if c.Name == "trace" {
 		n := 0
@@ -222,28 +258,50 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 			}
 		}
 		if n != 1 || (c.File != "") != (c.Row >= 0) {
-			return nil, usageError{errors.New("trace: give one of --source KEY, --episode ID, or --file PATH --row N")}
+			return fail("give one of --source KEY, --episode ID, or --file PATH --row N")
 		}
 	}
+	if c.Name == "stage" && c.Stage == "" && fs.NArg() > 0 {
+		return fail("the stage name must come first: hindcast stage NAME --config FILE ... (got %q after the flags)", fs.Arg(0))
+	}
 	if fs.NArg() > 0 {
-		return nil, usageError{fmt.Errorf("%s: unexpected argument %q", c.Name, fs.Arg(0))}
+		return fail("unexpected argument %q", fs.Arg(0))
 	}
 	switch c.Name {
 	case "run", "stage", "commit", "plan":
 		if c.Config == "" {
-			return nil, usageError{fmt.Errorf("%s: --config is required", c.Name)}
+			return fail("--config is required")
+		}
+	}
+	if c.Version != "" {
+		if err := checkVersion(c.Version); err != nil {
+			return nil, usageError{err: err, cmd: c.Name}
 		}
 	}
 	if c.Name == "stage" {
 		if !slices.Contains(stageNames(), c.Stage) {
-			return nil, usageError{fmt.Errorf("stage: want a stage name (%s) before the flags, got %q", strings.Join(stageNames(), ", "), c.Stage)}
+			return fail("want a stage name (%s) before the flags, got %q", strings.Join(stageNames(), ", "), c.Stage)
 		}
 	}
 	if c.Parallel < 1 && c.Name != "commit" && c.Name != "plan" {
-		return nil, usageError{fmt.Errorf("%s: --parallel must be at least 1", c.Name)}
+		return fail("--parallel must be at least 1, got %d", c.Parallel)
+	}
+	if c.Name == "bench" {
+		// Zero runs leave no time to take the median of, and zero frames no
+		// fleet to run on.
+		if c.Runs < 1 {
+			return fail("--runs must be at least 1, got %d", c.Runs)
+		}
+		if c.Frames < 1 {
+			return fail("--frames must be at least 1, got %d", c.Frames)
+		}
 	}
 	return c, nil
 }
+
+// checkVersion is pipeline.ValidVersion with a message that fits the two
+// names it rejects although they are made of allowed characters.
+func checkVersion(v string) error { return pipeline.ValidVersion(v) }
 
 func main() {
 	tuneGC()
@@ -257,12 +315,22 @@ func main() {
 func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	c, err := ParseCommand(args, stderr)
 	if err != nil {
-		fmt.Fprintf(stderr, "hindcast: %v\n\n%s", err, topUsage)
+		var ue usageError
+		if errors.As(err, &ue) && ue.cmd != "" {
+			fmt.Fprintf(stderr, "hindcast %s: %v\n\n", ue.cmd, err)
+			writeCommandUsage(stderr, ue.cmd, false)
+		} else {
+			fmt.Fprintf(stderr, "hindcast: %v\n\n%s", err, topUsage())
+		}
 		return exitUsage
 	}
 	if c.Help {
+		// Asked-for help is the answer, so it goes to stdout (and can be
+		// piped to a pager); only help after an error goes to stderr.
 		if c.Name == "help" {
-			fmt.Fprint(stdout, topUsage)
+			fmt.Fprint(stdout, topUsage())
+		} else {
+			writeCommandUsage(stdout, c.Name, true)
 		}
 		return exitOK
 	}
@@ -312,11 +380,6 @@ func runConfig(ctx context.Context, path, version string, parallel int, stdout i
 	cfg, err := pipeline.LoadConfig(path)
 	if err != nil {
 		return nil, err
-	}
-	if version != "" {
-		if err := pipeline.ValidVersion(version); err != nil {
-			return nil, usageError{err}
-		}
 	}
 	ui.log.Info("run", "config", path, "dataset", cfg.Dataset, "source", cfg.Source.URI, "parallel", parallel)
 	metrics := &pipeline.Metrics{}
@@ -403,7 +466,7 @@ func stageCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) err
 		idx := os.Getenv("JOB_COMPLETION_INDEX")
 		i, err := strconv.Atoi(idx)
 		if err != nil || i < 0 || i >= c.Workers {
-			return usageError{fmt.Errorf("stage: --workers %d needs JOB_COMPLETION_INDEX in 0…%d, got %q", c.Workers, c.Workers-1, idx)}
+			return usageError{err: fmt.Errorf("--workers %d needs JOB_COMPLETION_INDEX in 0…%d, got %q", c.Workers, c.Workers-1, idx)}
 		}
 		worker = i
 	}
@@ -421,11 +484,6 @@ func commitCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) er
 	cfg, err := pipeline.LoadConfig(c.Config)
 	if err != nil {
 		return err
-	}
-	if c.Version != "" {
-		if err := pipeline.ValidVersion(c.Version); err != nil {
-			return usageError{err}
-		}
 	}
 	metrics := &pipeline.Metrics{}
 	m, err := pipeline.CommitVersion(ctx, cfg, stages.All(), jobOptions(c, ui, metrics))
@@ -451,15 +509,15 @@ func planCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) erro
 		return enc.Encode(map[string]any{"config": c.Config, "stages": plans})
 	}
 	for _, p := range plans {
-		unit := "partitions"
+		one, many := "partition", "partitions"
 		if p.Name == pipeline.StageIngest {
-			unit = "objects"
+			one, many = "object", "objects"
 		}
 		if !p.Known {
 			fmt.Fprintf(stdout, "%-8s not known until the stage before it has run\n", p.Name)
 			continue
 		}
-		fmt.Fprintf(stdout, "%-8s %d %s: %d cached, %d to compute", p.Name, p.Items, unit, p.Cached, len(p.ToRun))
+		fmt.Fprintf(stdout, "%-8s %s: %d cached, %d to compute", p.Name, countOf(p.Items, one, many), p.Cached, len(p.ToRun))
 		if p.Name == pipeline.StageIngest {
 			fmt.Fprintf(stdout, ", %.1f MB to read", float64(p.Bytes)/1e6)
 		}

@@ -90,13 +90,14 @@ func TestUsageErrorsExit2(t *testing.T) {
 	notExist(t, filepath.Join(filepath.Dir(cfg), "work"), "a usage error must stop before any work")
 }
 
+// TestHelpExits0: asked-for help is printed to stdout, nothing to stderr.
 func TestHelpExits0(t *testing.T) {
 	for _, args := range [][]string{{"--help"}, {"-h"}, {"help"}} {
 		code, out, errOut := runMain(t, args...)
-		if code != exitOK {
-			t.Errorf("%v: exit %d, want 0", args, code)
+		if code != exitOK || errOut != "" {
+			t.Errorf("%v: exit %d, stderr %q; want 0 and nothing", args, code, errOut)
 		}
-		text := out + errOut
+		text := out
 		if !strings.Contains(text, "Usage:") {
 			t.Errorf("%v: no usage text:\n%s", args, text)
 		}
@@ -111,18 +112,18 @@ func TestHelpExits0(t *testing.T) {
 		fs := flag.NewFlagSet(name, flag.ContinueOnError)
 		fs.SetOutput(io.Discard)
 		spec.flags(fs, &Command{})
-		for _, h := range []string{"--help", "-h"} {
-			code, out, errOut := runMain(t, name, h)
-			if code != exitOK {
-				t.Errorf("%s %s: exit %d, want 0\n%s", name, h, code, errOut)
+		for _, args := range [][]string{{name, "--help"}, {name, "-h"}, {"help", name}} {
+			code, out, errOut := runMain(t, args...)
+			if code != exitOK || errOut != "" {
+				t.Errorf("%q: exit %d, stderr %q; want 0 and nothing", args, code, errOut)
 			}
-			text := out + errOut
-			if !strings.Contains(text, "hindcast "+name) {
-				t.Errorf("%s %s: usage does not name the command:\n%s", name, h, text)
+			text := out
+			if !strings.HasPrefix(text, "hindcast "+name+": "+spec.summary+"\n\nUsage:\n  hindcast "+spec.synopsis+"\n") {
+				t.Errorf("%q: help does not start with the command's summary and usage:\n%s", args, text)
 			}
 			fs.VisitAll(func(f *flag.Flag) {
-				if !strings.Contains(text, "-"+f.Name) {
-					t.Errorf("%s %s: usage does not list -%s:\n%s", name, h, f.Name, text)
+				if !strings.Contains(text, "\n  -"+f.Name+" ") && !strings.Contains(text, "\n  -"+f.Name+"\n") {
+					t.Errorf("%q: usage does not list -%s:\n%s", args, f.Name, text)
 				}
 			})
 		}
@@ -199,6 +200,12 @@ func TestMissingSourceFolderExits1(t *testing.T) {
 	}
 	if !strings.Contains(errOut, logs) {
 		t.Errorf("stderr does not name the folder %s:\n%s", logs, errOut)
+	}
+	// The user ran `run`: the message names the stage and what it did, and
+	// no inner step ("plan") the user never asked for.
+	last := strings.TrimSpace(errOut[strings.LastIndex(strings.TrimSpace(errOut), "\n")+1:])
+	if want := "hindcast run: ingest: list file://" + filepath.ToSlash(logs) + "/: "; !strings.HasPrefix(last, want) || strings.Contains(last, "plan:") {
+		t.Errorf("last line %q, want it to start %q with no \"plan:\"", last, want)
 	}
 	if m := manifests(t, dir); len(m) != 0 {
 		t.Errorf("a failed run wrote %v", m)

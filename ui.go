@@ -136,7 +136,7 @@ func humanCount(v float64) string {
 func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
 	f := m.Funnel
 	fmt.Fprintf(w, "\ndataset %s version %s\n", m.Dataset, m.Version)
-	fmt.Fprintf(w, "sources   %d objects (%d duplicate)\n", f.Objects, f.DuplicateObjects)
+	fmt.Fprintf(w, "sources   %s (%d duplicate)\n", countOf(f.Objects, "object", "objects"), f.DuplicateObjects)
 	fmt.Fprintf(w, "lines     %d\n", f.Lines)
 	fmt.Fprintf(w, "frames    %d kept (%s)\n", f.Frames, share(f.Frames, f.Lines))
 	var dropped int64
@@ -169,16 +169,29 @@ func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
 		bytes += fl.Bytes
 		tables[fl.Table]++
 	}
-	var parts []string
-	for _, t := range sortedNames(tables) {
-		parts = append(parts, fmt.Sprintf("%d %s", tables[t], t))
+	if len(m.Files) == 0 {
+		fmt.Fprintf(w, "files     0\n")
+	} else {
+		var parts []string
+		for _, t := range sortedNames(tables) {
+			parts = append(parts, fmt.Sprintf("%d %s", tables[t], t))
+		}
+		fmt.Fprintf(w, "files     %d (%s), %.1f MB\n", len(m.Files), strings.Join(parts, ", "), float64(bytes)/1e6)
 	}
-	fmt.Fprintf(w, "files     %d (%s), %.1f MB\n", len(m.Files), strings.Join(parts, ", "), float64(bytes)/1e6)
 	for _, s := range m.Stages {
 		fmt.Fprintf(w, "  stage %-9s %6.2fs  %d items, %d reused\n", s.Name, s.Seconds, s.Items, s.Reused)
 	}
 	fmt.Fprintf(w, "digest    %s\n", m.Digest)
 	fmt.Fprintf(w, "version   %s\n", where)
+}
+
+// countOf is n with its noun in the singular or the plural, as people read
+// it ("1 object", "2 objects", "0 objects").
+func countOf[N int | int64](n N, one, many string) string {
+	if n == 1 {
+		return "1 " + one
+	}
+	return fmt.Sprintf("%d %s", n, many)
 }
 
 func share(n, of int64) string {

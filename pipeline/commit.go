@@ -16,7 +16,10 @@ var versionPattern = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
 
 // ValidVersion checks a version name (SPEC §6).
 func ValidVersion(v string) error {
-	if !versionPattern.MatchString(v) || v == "." || v == ".." {
+	if v == "." || v == ".." {
+		return fmt.Errorf("version %q: \".\" and \"..\" are not allowed (they name folders)", v)
+	}
+	if !versionPattern.MatchString(v) {
 		return fmt.Errorf("version %q: want 1–64 of A-Za-z0-9._-", v)
 	}
 	return nil

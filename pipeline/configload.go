@@ -306,6 +306,12 @@ func nodeNumber(n *yaml.Node) (float64, bool) {
 
 func formatNumber(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
 
+// formatSum formats a computed sum such as train + val + test. Decimal
+// fractions add up with binary noise (0.7 + 0.1 + 0.1 is 0.8999999999999999),
+// which formatNumber would show; 10 significant digits hide that noise yet
+// still show any sum that splitSumTolerance (1e-9) rejects as different from 1.
+func formatSum(v float64) string { return strconv.FormatFloat(v, 'g', 10, 64) }
+
 func (l *configLoader) str(f cfgField, want string) (string, bool) {
 	if f.val.Kind != yaml.ScalarNode || f.val.ShortTag() != "!!str" {
 		l.fail(f.key, f.line, "must be %s, got %s", want, describeNode(f.val))
@@ -961,7 +967,7 @@ func (l *configLoader) splits(f cfgField, allowed []string, s *SplitConfig) {
 		*m.dst = v
 	}
 	if sum := s.Train + s.Val + s.Test; ok && math.Abs(sum-1) > splitSumTolerance {
-		l.fail(f.key, f.line, "train + val + test must be 1, got %s", formatNumber(sum))
+		l.fail(f.key, f.line, "train + val + test must be 1, got %s", formatSum(sum))
 	}
 }
 

@@ -452,6 +452,12 @@ func TestBadConfigs(t *testing.T) {
 			"episodes.min_steps", 11, "must be <= episodes.max_steps (500, the default), got 600", schemaAccepts},
 		{"splits sum", baseConfig + "splits: {train: 0.5, val: 0.25}\n",
 			"splits", 10, "train + val + test must be 1, got 0.75", schemaAccepts},
+		// 0.7 + 0.1 + 0.1 is 0.8999999999999999 in float64: the message shows 0.9.
+		{"splits sum with float noise", baseConfig + "splits: {train: 0.7, val: 0.1, test: 0.1}\n",
+			"splits", 10, "train + val + test must be 1, got 0.9", schemaAccepts},
+		// Just outside splitSumTolerance: the rounding must not make it read as 1.
+		{"splits sum just above 1", baseConfig + "splits: {train: 0.5, val: 0.2500000015, test: 0.25}\n",
+			"splits", 10, "train + val + test must be 1, got 1.000000002", schemaAccepts},
 		{"split above 1", baseConfig + "splits:\n  train: 1.2\n",
 			"splits.train", 11, "must be a number from 0 to 1, got 1.2", schemaRejects},
 		{"split negative", baseConfig + "splits: {train: 1.1, val: -0.1}\n",

@@ -97,6 +97,20 @@ func (m Metered) Open(ctx context.Context, key string, offset int64) (io.ReadClo
 	return &meteredReader{ReadCloser: rc, m: m.M}, nil
 }
 
+// PutBytes implements BytesPutter, through the backend's own when it has
+// one.
+func (m Metered) PutBytes(ctx context.Context, key string, data []byte, exclusive bool) error {
+	p, ok := m.Store.(BytesPutter)
+	if !ok {
+		return putByCreate(ctx, m, key, data, exclusive)
+	}
+	if err := p.PutBytes(ctx, key, data, exclusive); err != nil {
+		return err
+	}
+	m.M.BytesWritten.Add(int64(len(data)))
+	return nil
+}
+
 // Create implements Store.
 func (m Metered) Create(ctx context.Context, key string) (Upload, error) {
 	u, err := m.Store.Create(ctx, key)

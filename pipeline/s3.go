@@ -543,6 +543,15 @@ func (u *s3Upload) Commit(exclusive bool) error {
 // put sends a small object in one request. An exclusive put is a
 // conditional write (If-None-Match: *); a store that does not support it is
 // checked with a HEAD first, and the message says the check was not atomic.
+// PutBytes implements BytesPutter: one PUT whatever the size (S3 takes up
+// to 5 GiB in one), so that an exclusive write of data already in memory,
+// the manifest above all, keeps the conditional write and its lost-answer
+// and 501 handling, which a multipart upload would not.
+func (s *S3Store) PutBytes(ctx context.Context, key string, data []byte, exclusive bool) error {
+	u := &s3Upload{s: s, ctx: ctx, key: key, buf: data, done: true}
+	return u.put(exclusive)
+}
+
 func (u *s3Upload) put(exclusive bool) error {
 	tries := 0
 	do := func(cond bool) error {

@@ -661,6 +661,45 @@ func TestS3Multipart(t *testing.T) {
 		}
 	})
 
+	// Put of an object above the part size (a manifest of a fleet with many
+	// thousand sources) is one conditional PUT, not a multipart upload, so
+	// that it keeps the conditional write's handling of a lost answer and of
+	// a taken key (TestS3ExclusivePutLostResponse), which a retried
+	// CompleteMultipartUpload would not have.
+	t.Run("ExclusivePutIsOnePUT", func(t *testing.T) {
+		s, m := r.store(t, "mp/", StorageConfig{PartSize: 5 * mib, MaxConcurrency: 2, Attempts: 4})
+		data := s3Bytes(27, 6*mib)
+		r.rec.reset(0)
+		if err := Put(ctx, s, "v9/manifest.json", data, true); err != nil {
+			t.Fatalf("exclusive put of 6 MiB: %v", err)
+		}
+		if got := r.get(t, "mp/v9/manifest.json"); sha256.Sum256(got) != sha256.Sum256(data) {
+			t.Fatal("object differs from the bytes put")
+		}
+		puts := r.rec.requests(func(s s3Seen) bool { return s.Method == http.MethodPut })
+		multipart := r.rec.requests(func(s s3Seen) bool {
+			return strings.Contains(s.Query, "uploads") || strings.Contains(s.Query, "uploadId")
+		})
+		if len(puts) != 1 || len(multipart) != 0 || m.Requests.Load() != 1 {
+			t.Errorf("%d PUTs, %d multipart requests, %d requests; want 1 PUT and nothing else", len(puts), len(multipart), m.Requests.Load())
+		}
+		// Straight to the server: a proxy in between turns the server's
+		// early 412 to a large PUT into a broken pipe.
+		direct, err := NewS3Store(ctx, "s3://"+r.bucket+"/mp/", StorageConfig{Endpoint: r.srv.Endpoint, PartSize: 5 * mib, Attempts: 4}, &Metrics{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := Put(ctx, direct, "v9/manifest.json", s3Bytes(28, 6*mib), true); !errors.Is(err, ErrExists) {
+			t.Errorf("second exclusive put of 6 MiB: %v, want ErrExists", err)
+		}
+		if got := r.get(t, "mp/v9/manifest.json"); sha256.Sum256(got) != sha256.Sum256(data) {
+			t.Error("object replaced by a refused exclusive put")
+		}
+		if p := r.pendingUploads(t); len(p) != 0 {
+			t.Errorf("pending uploads: %q", p)
+		}
+	})
+
 	t.Run("Abort", func(t *testing.T) {
 		s, _ := r.store(t, "mp/", StorageConfig{PartSize: 5 * mib, MaxConcurrency: 2})
 		u, _ := s.Create(ctx, "aborted.bin")

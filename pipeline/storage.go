@@ -75,8 +75,21 @@ func ReadAll(ctx context.Context, s Store, key string) ([]byte, error) {
 	return b, nil
 }
 
+// BytesPutter is implemented by stores that write an object held in memory
+// better in one request than through Create (S3: one conditional PUT).
+type BytesPutter interface {
+	PutBytes(ctx context.Context, key string, data []byte, exclusive bool) error
+}
+
 // Put writes a whole (small) object atomically.
 func Put(ctx context.Context, s Store, key string, data []byte, exclusive bool) error {
+	if p, ok := s.(BytesPutter); ok {
+		return p.PutBytes(ctx, key, data, exclusive)
+	}
+	return putByCreate(ctx, s, key, data, exclusive)
+}
+
+func putByCreate(ctx context.Context, s Store, key string, data []byte, exclusive bool) error {
 	u, err := s.Create(ctx, key)
 	if err != nil {
 		return err
