@@ -697,7 +697,7 @@ func readManifest(t *testing.T, versionDir string) (*manifestDoc, []byte) {
 // validateManifest checks raw against schemas/manifest.schema.json.
 func validateManifest(t *testing.T, raw []byte) {
 	t.Helper()
-	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ManifestSchema))
+	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ManifestSchema()))
 	if err != nil {
 		t.Fatalf("reading the manifest schema: %v", err)
 	}

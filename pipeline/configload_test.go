@@ -55,7 +55,7 @@ func editBase(t *testing.T, old, new string) string {
 
 func compileConfigSchema(t *testing.T) *jsonschema.Schema {
 	t.Helper()
-	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ConfigSchema))
+	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ConfigSchema()))
 	if err != nil {
 		t.Fatalf("reading the config schema: %v", err)
 	}
@@ -766,7 +766,7 @@ func TestHashJSONLeavesOutStorageLocations(t *testing.T) {
 // the loader's defaults.
 func TestSchemaMatchesLoader(t *testing.T) {
 	var s map[string]any
-	if err := json.Unmarshal(schemas.ConfigSchema, &s); err != nil {
+	if err := json.Unmarshal(schemas.ConfigSchema(), &s); err != nil {
 		t.Fatal(err)
 	}
 	props := func(obj any) map[string]any {

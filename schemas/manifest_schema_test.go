@@ -25,7 +25,7 @@ import (
 // pattern.
 func compileManifestSchema(t *testing.T) *jsonschema.Schema {
 	t.Helper()
-	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ManifestSchema))
+	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ManifestSchema()))
 	if err != nil {
 		t.Fatalf("reading the manifest schema: %v", err)
 	}

@@ -44,7 +44,7 @@ var (
 )
 
 // pngSignature is the fixed 8-byte PNG file signature (PNG spec §5.2).
-var pngSignature = [8]byte{0x89, 'P', 'N', 'G', '\r', '\n', 0x1A, '\n'}
+const pngSignature = "\x89PNG\r\n\x1a\n"
 
 // Check reports the format of b when b is a complete PNG or JPEG image, and an
 // error saying what is wrong otherwise (unknown signature, truncated chunk, bad
@@ -56,12 +56,12 @@ func Check(b []byte) (Format, error) {
 	switch {
 	case len(b) == 0:
 		return "", fmt.Errorf("%w: no bytes", ErrTruncated)
-	case len(b) >= len(pngSignature) && bytes.Equal(b[:len(pngSignature)], pngSignature[:]):
+	case len(b) >= len(pngSignature) && string(b[:len(pngSignature)]) == pngSignature:
 		if err := checkPNG(b); err != nil {
 			return "", err
 		}
 		return PNG, nil
-	case len(b) < len(pngSignature) && bytes.Equal(b, pngSignature[:len(b)]):
+	case len(b) < len(pngSignature) && string(b) == pngSignature[:len(b)]:
 		return "", fmt.Errorf("png: %w: %d of the 8 signature bytes", ErrTruncated, len(b))
 	case len(b) >= 2 && b[0] == 0xFF && b[1] == 0xD8:
 		if err := checkJPEG(b); err != nil {
