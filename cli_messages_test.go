@@ -15,6 +15,7 @@ import (
 	"runtime"
 	"strings"
 	"testing"
+	"time"
 
 	"hindcast/pipeline"
 )
@@ -282,5 +283,20 @@ func TestOpenVersionSaysWhatTheLocationIs(t *testing.T) {
 	code, out, errOut := runMain(t, "show", filepath.Join(root, "d"))
 	if want := "hindcast show: open " + uri(filepath.Join(root, "d")) + "/: a dataset folder, not a version; its versions: v1, v2\n"; code != exitRuntime || out != "" || errOut != want {
 		t.Errorf("show of a dataset folder: exit %d, stdout %q, stderr %q; want exit 1, stderr %q", code, out, errOut, want)
+	}
+}
+
+// TestProgressLine: ingest's live line counts objects and frames per second
+// (the frames it has read over the time since the stage began); the later
+// stages, which count no frames as they go, show partitions only, not a
+// rate of 0.
+func TestProgressLine(t *testing.T) {
+	p := &progress{stage: "ingest", items: 12, done: 3, frames: 50_000, start: time.Now().Add(-10 * time.Second)}
+	if got := p.describe(); !strings.HasPrefix(got, "ingest   3/12 objects, ") || !strings.HasSuffix(got, " frames/s") {
+		t.Errorf("ingest line %q", got)
+	}
+	p = &progress{stage: "goals", items: 8, done: 5, start: time.Now().Add(-time.Second)}
+	if got, want := p.describe(), "goals    5/8 partitions"; got != want {
+		t.Errorf("goals line %q, want %q", got, want)
 	}
 }

@@ -365,12 +365,20 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 
 func toolInfo() pipeline.ToolInfo {
 	t := pipeline.ToolInfo{Version: pipeline.ToolVersion, Commit: "unknown"}
+	modified := false
 	if bi, ok := debug.ReadBuildInfo(); ok {
 		for _, s := range bi.Settings {
-			if s.Key == "vcs.revision" && s.Value != "" {
+			switch {
+			case s.Key == "vcs.revision" && s.Value != "":
 				t.Commit = s.Value
+			case s.Key == "vcs.modified" && s.Value == "true":
+				modified = true
 			}
 		}
+	}
+	// A build from an edited tree is not that commit's code.
+	if modified && t.Commit != "unknown" {
+		t.Commit += "+modified"
 	}
 	return t
 }

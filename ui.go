@@ -75,11 +75,12 @@ func (p *progress) describe() string {
 	if s := time.Since(p.start).Seconds(); s > 0 {
 		rate = float64(p.frames) / s
 	}
-	unit := "partitions"
-	if p.stage == pipeline.StageIngest {
-		unit = "objects"
+	if p.stage != pipeline.StageIngest {
+		// Only ingest counts frames as it goes; the later stages' unit of
+		// progress is the partition.
+		return fmt.Sprintf("%-8s %d/%d partitions", p.stage, p.done, p.items)
 	}
-	return fmt.Sprintf("%-8s %d/%d %s, %s frames/s", p.stage, p.done, p.items, unit, humanCount(rate))
+	return fmt.Sprintf("%-8s %d/%d objects, %s frames/s", p.stage, p.done, p.items, humanCount(rate))
 }
 
 func (p *progress) Advance(name string, frames, bytes int64) {

@@ -339,7 +339,11 @@ func (r *ShowResult) WriteText(w io.Writer) error {
 	p.printf("digest    %s\n", r.Digest)
 
 	s := r.Sources
-	p.printf("\nsources   %d objects, %s, %d duplicate, %d incomplete\n", s.Objects, shBytes(s.Bytes), s.Duplicates, s.Incomplete)
+	noun := "objects"
+	if s.Objects == 1 {
+		noun = "object"
+	}
+	p.printf("\nsources   %d %s, %s, %d duplicate, %d incomplete\n", s.Objects, noun, shBytes(s.Bytes), s.Duplicates, s.Incomplete)
 	for _, k := range s.IncompleteKeys {
 		p.printf("  incomplete %s\n", k)
 	}

@@ -16,11 +16,13 @@ import (
 	"time"
 
 	"github.com/aws/aws-sdk-go-v2/aws"
+	v4 "github.com/aws/aws-sdk-go-v2/aws/signer/v4"
 	awshttp "github.com/aws/aws-sdk-go-v2/aws/transport/http"
 	"github.com/aws/aws-sdk-go-v2/config"
 	"github.com/aws/aws-sdk-go-v2/service/s3"
 	"github.com/aws/aws-sdk-go-v2/service/s3/types"
 	"github.com/aws/smithy-go"
+	"github.com/aws/smithy-go/logging"
 	"golang.org/x/sync/errgroup"
 )
 
@@ -74,6 +76,10 @@ func NewS3Store(ctx context.Context, uri string, opt StorageConfig, metrics *Met
 	loads := []func(*config.LoadOptions) error{
 		config.WithHTTPClient(httpClient),
 		config.WithRetryMaxAttempts(1),
+		// The SDK's own log lines (an unread body it could not discard, a
+		// fallback of the metadata service) say nothing the error that
+		// reaches the user does not, and break the run's JSON log.
+		config.WithLogger(logging.Nop{}),
 	}
 	if opt.Region != "" {
 		loads = append(loads, config.WithRegion(opt.Region))
@@ -645,7 +651,19 @@ func mapS3Error(err error) error {
 	if errors.As(err, &nsk) || errors.As(err, &nf) || isStatus(err, http.StatusNotFound) {
 		return fmt.Errorf("%w (%v)", ErrNotFound, err)
 	}
+	if noCredentials(err) {
+		return fmt.Errorf("%w (no S3 credentials found: set AWS_ACCESS_KEY_ID and AWS_SECRET_ACCESS_KEY, AWS_PROFILE, or a web identity token for the cluster's service account)", err)
+	}
 	return err
+}
+
+// noCredentials reports whether a request failed before it was sent, for
+// want of credentials. The SDK gives that failure no type of its own when
+// the identity step fails (its text, "get identity: ", is the mark), and a
+// SigningError when signing does.
+func noCredentials(err error) bool {
+	var se *v4.SigningError
+	return errors.As(err, &se) || strings.Contains(err.Error(), "get identity: ")
 }
 
 // retryableS3 decides whether a failed request may succeed when repeated:
@@ -654,6 +672,10 @@ func mapS3Error(err error) error {
 // answers (4xx) are not, nor 501 (the store lacks the call or the header:
 // RFC 9110 §15.6.2), which callers that can do without it handle.
 func retryableS3(err error) bool {
+	// No credentials to sign with: asking again finds none either.
+	if noCredentials(err) {
+		return false
+	}
 	// The SDK also wraps failures that got no answer (a reset, a timeout:
 	// status 0) or a cut one (status 200) in a ResponseError; only a real
 	// error status decides here.

@@ -1043,6 +1043,21 @@ func TestS3PermanentErrors(t *testing.T) {
 		}
 	})
 
+	t.Run("NoCredentials", func(t *testing.T) {
+		// Nothing in the chain: no keys, no profile, no metadata service.
+		t.Setenv("AWS_ACCESS_KEY_ID", "")
+		t.Setenv("AWS_SECRET_ACCESS_KEY", "")
+		s, m := r.store(t, "p/", StorageConfig{Attempts: 4})
+		r.rec.reset(0)
+		_, err := s.Stat(ctx, "obj.bin")
+		if err == nil || !strings.Contains(err.Error(), "s3://hc-perm/p/obj.bin") || !strings.Contains(err.Error(), "no S3 credentials found: set AWS_ACCESS_KEY_ID") {
+			t.Fatalf("Stat without credentials: %v; want an error naming the object and where credentials come from", err)
+		}
+		if q, rt, n := m.Requests.Load(), m.Retries.Load(), len(r.rec.requests(anyRequest)); q != 1 || rt != 0 || n != 0 {
+			t.Errorf("%d requests, %d retries, %d reached the server; want 1 try, 0 retries, 0 at the server", q, rt, n)
+		}
+	})
+
 	t.Run("Persistent500", func(t *testing.T) {
 		s, m := r.store(t, "p/", StorageConfig{Attempts: 3})
 		r.fp.Set(faultproxy.Rule{Kind: faultproxy.Status500, Method: http.MethodGet, PathContains: "obj.bin"})
