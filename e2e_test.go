@@ -367,6 +367,7 @@ func splitOf(key string, train, val float64) string {
 type pqFile struct {
 	kv        map[string]string
 	kvOrder   []string
+	root      string   // the schema's root name
 	cols      []string // top-level column names, in order
 	kinds     []string // their types, as colKind describes them
 	rowGroups []int64  // rows per row group
@@ -489,6 +490,7 @@ func readParquet(t *testing.T, path string) *pqFile {
 		p.kvOrder = append(p.kvOrder, k)
 	}
 	root := md.Schema.Root()
+	p.root = root.Name()
 	for i := range root.NumFields() {
 		p.cols = append(p.cols, root.Field(i).Name())
 		p.kinds = append(p.kinds, colKind(root.Field(i)))
@@ -815,6 +817,10 @@ func checkShards(t *testing.T, float string) {
 			t.Fatalf("path %s: %v", p, err)
 		}
 
+		// The schema's root is named after its table, not a Go type.
+		if pf.root != k.table {
+			t.Errorf("%s: schema root %q, want %q", p, pf.root, k.table)
+		}
 		// Footer key-value metadata (SPEC §4): exactly these keys, nothing
 		// that changes between runs.
 		wantKV := map[string]string{"dataset": fixDataset, "table": k.table, "split": k.split,

@@ -81,7 +81,8 @@ func NewFrameTable(cameras []string, f32 bool) (*FrameTable, error) {
 	fields = append(fields,
 		field("Src", str, "src,dict"),
 		field("SrcLine", reflect.TypeFor[int64](), "src_line"))
-	schema := parquet.SchemaOf(reflect.New(reflect.StructOf(fields)).Elem().Interface())
+	// The root is named after the table (SPEC §4), not left to the Go type.
+	schema := parquet.NewSchema("frames", parquet.SchemaOf(reflect.New(reflect.StructOf(fields)).Elem().Interface()))
 	ft := &FrameTable{Schema: schema, Cameras: cameras, f32: f32}
 	look := func(path ...string) (leaf, error) {
 		l, ok := schema.Lookup(path...)

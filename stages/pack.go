@@ -141,6 +141,12 @@ type shard struct {
 	imgBytes int64
 }
 
+// pairsSchema is the pairs table's schema with its root named after the
+// table (SPEC §4), not after the Go type (which would read "PairRow[float32]").
+func pairsSchema[F schemas.Float]() *parquet.Schema {
+	return parquet.NewSchema("pairs", parquet.SchemaOf(new(schemas.PairRow[F])))
+}
+
 // packGroupImageBytes cuts a frames row group, at an episode's end, once it
 // holds this many bytes of camera frames: the writer buffers a row group
 // in memory until it is written, and row_group_rows rows of camera frames
@@ -316,9 +322,9 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		if table == "frames" {
 			s.frames = parquet.NewWriter(s.bw, append(opts, ft.Schema)...)
 		} else if cfg.Float == "float32" {
-			s.pairs = &typedPairs[float32]{w: parquet.NewGenericWriter[schemas.PairRow[float32]](s.bw, opts...)}
+			s.pairs = &typedPairs[float32]{w: parquet.NewGenericWriter[schemas.PairRow[float32]](s.bw, append(opts, pairsSchema[float32]())...)}
 		} else {
-			s.pairs = &typedPairs[float64]{w: parquet.NewGenericWriter[schemas.PairRow[float64]](s.bw, opts...)}
+			s.pairs = &typedPairs[float64]{w: parquet.NewGenericWriter[schemas.PairRow[float64]](s.bw, append(opts, pairsSchema[float64]())...)}
 		}
 		shards[[2]string{table, split}] = s
 		return s, nil
