@@ -149,7 +149,7 @@ func commands() map[string]commandSpec {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
 			parallel(fs, c)
 		}},
-		"bench": {"bench [--frames N] [--runs K] [--peer BIN]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
+		"bench": {"bench [--frames N] [--runs K] [--peer BIN] [--s3-endpoint URL]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/bench", "folder for the benchmark fleet and its outputs")
 			fs.IntVar(&c.Frames, "frames", 1000000, "frames in the benchmark fleet")
 			fs.IntVar(&c.Runs, "runs", 3, "timed runs (the median is reported)")
