@@ -168,7 +168,7 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 			return nil, fmt.Errorf("episodes %s: summary: %w", s.Item.ID, err)
 		}
 		m.Funnel.Frames += e.Frames
-		m.Funnel.Episodes += int64(len(e.Episodes))
+		m.Funnel.Episodes += e.Episodes
 		for u, n := range e.Units {
 			unit(u).Frames += n
 		}

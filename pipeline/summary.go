@@ -1,8 +1,11 @@
 package pipeline
 
 import (
+	"bufio"
+	"context"
 	"encoding/json"
 	"fmt"
+	"io"
 )
 
 // Summaries seal stage items (see doneRecord). They are the only thing a
@@ -71,8 +74,12 @@ type EpisodesSummary struct {
 	Partition int    `json:"partition"`
 	File      string `json:"file"` // work key of the episode stream, sorted by (episode, step)
 	Frames    int64  `json:"frames"`
-	// Episodes in file order (by id).
-	Episodes []EpisodeInfo `json:"episodes"`
+	// Episodes counts the partition's episodes; Index is the work key of
+	// their list in file order (by id), written by WriteEpisodeIndex. The
+	// list is not in the summary itself: every stage's summaries are held
+	// for the whole run, and a partition may hold millions of episodes.
+	Episodes int64  `json:"episodes"`
+	Index    string `json:"index"`
 	// Dropped counts the frames this stage dropped, per source key and reason.
 	Dropped map[string]map[string]int64 `json:"dropped"`
 	// DroppedByUnit counts them per unit and reason.
@@ -222,4 +229,46 @@ func AddCount[K comparable](m map[string]map[K]int64, a string, b K, n int64) {
 		m[a] = in
 	}
 	in[b] += n
+}
+
+// WriteEpisodeIndex stores a partition's episode list as JSON Lines, one
+// EpisodeInfo per line.
+func WriteEpisodeIndex(ctx context.Context, work Store, key string, infos []EpisodeInfo) error {
+	up, err := work.Create(ctx, key)
+	if err != nil {
+		return err
+	}
+	bw := bufio.NewWriterSize(up, 256<<10)
+	enc := json.NewEncoder(bw)
+	for i := range infos {
+		if err := enc.Encode(&infos[i]); err != nil {
+			up.Abort()
+			return fmt.Errorf("write %s: %w", JoinURI(work.URI(), key), err)
+		}
+	}
+	if err := bw.Flush(); err != nil {
+		up.Abort()
+		return fmt.Errorf("write %s: %w", JoinURI(work.URI(), key), err)
+	}
+	return up.Commit(false)
+}
+
+// ReadEpisodeIndex reads back a list WriteEpisodeIndex stored.
+func ReadEpisodeIndex(ctx context.Context, work Store, key string) ([]EpisodeInfo, error) {
+	rc, err := work.Open(ctx, key, 0)
+	if err != nil {
+		return nil, err
+	}
+	defer rc.Close()
+	var infos []EpisodeInfo
+	dec := json.NewDecoder(bufio.NewReaderSize(rc, 256<<10))
+	for {
+		var e EpisodeInfo
+		if err := dec.Decode(&e); err == io.EOF {
+			return infos, nil
+		} else if err != nil {
+			return nil, fmt.Errorf("read %s: %w", JoinURI(work.URI(), key), err)
+		}
+		infos = append(infos, e)
+	}
 }

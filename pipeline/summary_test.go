@@ -1,9 +1,12 @@
 package pipeline
 
 import (
+	"context"
 	"encoding/json"
+	"errors"
 	"math"
 	"reflect"
+	"slices"
 	"testing"
 )
 
@@ -173,5 +176,28 @@ func TestVectorStatsEmpty(t *testing.T) {
 		if vs.Count != 0 || vs.Mean == nil || len(vs.Mean) != 0 || vs.Std == nil || vs.Min == nil || vs.Max == nil {
 			t.Errorf("vectorStats(%v) = %+v", m, vs)
 		}
+	}
+}
+
+// TestEpisodeIndexRoundTrip: the episode list the episodes stage stores
+// beside a partition comes back whole and in order; a missing list is
+// ErrNotFound.
+func TestEpisodeIndexRoundTrip(t *testing.T) {
+	ctx := context.Background()
+	s := NewLocalStore(t.TempDir())
+	want := []EpisodeInfo{
+		{ID: "arm-1-1000", Unit: "arm-1", Embodiment: "arm", Steps: 30},
+		{ID: "neg--5000000000", Unit: "neg", Embodiment: "arm", Steps: 15},
+		{ID: "u.x_9-7", Unit: "u.x_9", Embodiment: "cart", Steps: 2},
+	}
+	if err := WriteEpisodeIndex(ctx, s, "episodes/k/episodes.index.jsonl", want); err != nil {
+		t.Fatal(err)
+	}
+	got, err := ReadEpisodeIndex(ctx, s, "episodes/k/episodes.index.jsonl")
+	if err != nil || !slices.Equal(got, want) {
+		t.Errorf("read back %+v, %v; want %+v", got, err, want)
+	}
+	if _, err := ReadEpisodeIndex(ctx, s, "episodes/none/episodes.index.jsonl"); !errors.Is(err, ErrNotFound) {
+		t.Errorf("missing index: %v, want ErrNotFound", err)
 	}
 }

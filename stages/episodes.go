@@ -112,7 +112,10 @@ func (st Episodes) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) 
 	if sum.Quarantine, err = q.close(); err != nil {
 		return nil, err
 	}
-	sum.Episodes, sum.Frames = infos, frames
+	sum.Episodes, sum.Frames, sum.Index = int64(len(infos)), frames, dir+"episodes.index.jsonl"
+	if err := pipeline.WriteEpisodeIndex(ctx, env.Work, sum.Index, infos); err != nil {
+		return nil, err
+	}
 	for _, e := range infos {
 		sum.Units[e.Unit] += int64(e.Steps)
 	}

@@ -57,10 +57,15 @@ func (st Goals) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 	eps := it.Meta.(pipeline.EpisodesSummary)
 	cfg := env.Config
 	sum := pipeline.GoalsSummary{Partition: eps.Partition, File: pipeline.ItemDir(st.Name(), it.Key) + "goals.arrow", PerStrategy: map[string]int64{}}
+	// The partition's episodes, for the negatives' draws: one partition's
+	// list in memory at a time.
+	infos, err := pipeline.ReadEpisodeIndex(ctx, env.Work, eps.Index)
+	if err != nil {
+		return nil, err
+	}
 	var neg *negatives
 	if cfg.Goals.Negative > 0 {
-		var err error
-		if neg, err = loadNegatives(ctx, env, eps); err != nil {
+		if neg, err = loadNegatives(ctx, env, eps, infos); err != nil {
 			return nil, err
 		}
 		defer neg.close()
@@ -89,7 +94,7 @@ func (st Goals) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 			proj = append(proj, project(nil, f.Obs, emb.GoalDims))
 			ok = fr.Next(&f)
 		}
-		n, err := relabel(cfg, emb, id, idx, eps.Episodes, proj, neg, func(g *schemas.Goal) error {
+		n, err := relabel(cfg, emb, id, idx, infos, proj, neg, func(g *schemas.Goal) error {
 			sum.PerStrategy[g.Strategy.String()]++
 			return gw.Write(g)
 		})
@@ -264,7 +269,7 @@ type negatives struct {
 	width  []int            // projection length per episode
 }
 
-func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.EpisodesSummary) (*negatives, error) {
+func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.EpisodesSummary, infos []pipeline.EpisodeInfo) (*negatives, error) {
 	tmp, err := os.CreateTemp("", "hindcast-goals-*")
 	if err != nil {
 		return nil, err
@@ -272,7 +277,7 @@ func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.Episodes
 	os.Remove(tmp.Name()) // unlinked now, freed when closed, even after a crash
 	neg := &negatives{f: tmp, byEmb: map[string][]int{}}
 	var off int64
-	for i, e := range eps.Episodes {
+	for i, e := range infos {
 		neg.byEmb[e.Embodiment] = append(neg.byEmb[e.Embodiment], i)
 		w := len(env.Config.Embodiments[e.Embodiment].GoalDims)
 		neg.offset = append(neg.offset, off)

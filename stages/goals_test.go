@@ -615,9 +615,10 @@ func goalsStageRun(t *testing.T, cfg *pipeline.Config, eps []goalsEpisode) ([]sc
 		t.Fatal(err)
 	}
 	fw := pipeline.NewFrameWriter(up, cfg.Float == "float32")
-	sum := pipeline.EpisodesSummary{Partition: 0, File: key}
+	sum := pipeline.EpisodesSummary{Partition: 0, File: key, Index: "episodes/test/episodes.index.jsonl", Episodes: int64(len(eps))}
+	var infos []pipeline.EpisodeInfo
 	for _, e := range eps {
-		sum.Episodes = append(sum.Episodes, pipeline.EpisodeInfo{ID: e.id(), Unit: e.Unit, Embodiment: e.Embodiment, Steps: len(e.Obs)})
+		infos = append(infos, pipeline.EpisodeInfo{ID: e.id(), Unit: e.Unit, Embodiment: e.Embodiment, Steps: len(e.Obs)})
 		for i, obs := range e.Obs {
 			f := schemas.Frame{Unit: e.Unit, Embodiment: e.Embodiment, T: e.T0 + int64(i)*1e6, Src: "logs/a.jsonl",
 				Line: int64(i + 1), Obs: obs, Episode: e.id(), Step: int32(i), Last: i == len(e.Obs)-1}
@@ -631,6 +632,9 @@ func goalsStageRun(t *testing.T, cfg *pipeline.Config, eps []goalsEpisode) ([]sc
 		t.Fatal(err)
 	}
 	if err := up.Commit(false); err != nil {
+		t.Fatal(err)
+	}
+	if err := pipeline.WriteEpisodeIndex(ctx, work, sum.Index, infos); err != nil {
 		t.Fatal(err)
 	}
 	env := &pipeline.Env{Config: cfg, Work: work, Parallel: 1}
