@@ -226,7 +226,12 @@ func decompress(r *bufio.Reader) (io.Reader, error) {
 	case len(magic) >= 2 && magic[0] == 0x1f && magic[1] == 0x8b:
 		return gzip.NewReader(r)
 	case len(magic) == 4 && bytes.Equal(magic, []byte{0x28, 0xb5, 0x2f, 0xfd}):
-		d, err := zstd.NewReader(r, zstd.WithDecoderConcurrency(1), zstd.WithDecoderLowmem(true))
+		// A frame may declare a window of up to 3.75 TB (RFC 8878 §3.1.1.1.2),
+		// which decoding may hold; the zstd tool itself refuses more than
+		// 128 MiB unless told otherwise (its --long default, from memory).
+		// A larger one makes the object incomplete, not the worker run out
+		// of memory.
+		d, err := zstd.NewReader(r, zstd.WithDecoderConcurrency(1), zstd.WithDecoderLowmem(true), zstd.WithDecoderMaxWindow(zstdMaxWindow))
 		if err != nil {
 			return nil, err
 		}
@@ -234,6 +239,9 @@ func decompress(r *bufio.Reader) (io.Reader, error) {
 	}
 	return r, nil
 }
+
+// zstdMaxWindow is the largest zstd window an ingest item decodes with.
+const zstdMaxWindow = 128 << 20
 
 type zstdCloser struct{ *zstd.Decoder }
 

@@ -1014,3 +1014,36 @@ func TestIngestObjectChangedSinceListing(t *testing.T) {
 		t.Errorf("ingest of the object as listed: %v", err)
 	}
 }
+
+// zstdRawFrame is a zstd frame written by hand (RFC 8878 §3.1.1): the magic
+// number, a frame header descriptor of 0 (no content size, not single
+// segment, no checksum, no dictionary), a window descriptor of exponent e
+// and mantissa 0 (window 2^(10+e) bytes, §3.1.1.1.2), then the content as
+// one raw, last block (block header: last = 1, type raw = 0, size; §3.1.1.2).
+func zstdRawFrame(e byte, content []byte) []byte {
+	b := []byte{0x28, 0xb5, 0x2f, 0xfd, 0x00, e << 3}
+	h := 1 | uint32(len(content))<<3
+	b = append(b, byte(h), byte(h>>8), byte(h>>16))
+	return append(b, content...)
+}
+
+// TestIngestZstdWindowBound: a zstd frame may declare a window far larger
+// than its content; decoding may hold that window, so ingest decodes windows of
+// up to 128 MiB and counts an object that declares more as incomplete, with
+// no lines, instead of allocating it. The same content under a 1 MiB window
+// is read whole.
+func TestIngestZstdWindowBound(t *testing.T) {
+	content := jsonLines(armLine("z1", 1000, ""), armLine("z1", 2000, ""))
+	m := runPipeline(t, fixtureConfig(1000), map[string][]byte{
+		"small-window.jsonl.zst": zstdRawFrame(10, content), // 2^20 bytes
+		"huge-window.jsonl.zst":  zstdRawFrame(18, content), // 2^28 bytes: over 128 MiB
+	})
+	wantSource(t, m, "small-window.jsonl.zst", 2, 2, nil)
+	wantSource(t, m, "huge-window.jsonl.zst", 0, 0, nil)
+	if s := sourceByKey(t, m, "huge-window.jsonl.zst"); !s.Incomplete {
+		t.Errorf("an object declaring a 256 MiB window: incomplete %v, want true", s.Incomplete)
+	}
+	if s := sourceByKey(t, m, "small-window.jsonl.zst"); s.Incomplete {
+		t.Errorf("an object declaring a 1 MiB window: incomplete, want read whole")
+	}
+}
