@@ -21,10 +21,12 @@ import (
 // in record batches so no stage holds more than a batch per open stream.
 
 // batchRows and batchBytes bound one record batch: rows for vectors, bytes for
-// frames that carry camera images.
+// frames that carry camera images. A merge holds a batch of each of up to
+// maxFanIn (64) streams at once, so 1 MiB a batch keeps a merge of camera
+// frames near 64 MiB.
 const (
 	batchRows  = 1024
-	batchBytes = 4 << 20
+	batchBytes = 1 << 20
 )
 
 // readBuffer is the read-ahead of one intermediate stream. A merge holds
