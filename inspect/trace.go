@@ -1056,7 +1056,7 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 	for _, f := range r.Files {
 		ew.printf("  %s  %s\n", f.Path, trRowsText(f.Rows))
 		if r.Kind == TraceKindSource {
-			ew.printf("    episodes: %s\n", strings.Join(f.Episodes, ", "))
+			ew.printf("    episodes: %s\n", trListText(f.Episodes, trTextEpisodes))
 		}
 	}
 	for _, e := range r.Episodes {
@@ -1105,6 +1105,18 @@ func trRowsText(ranges [][2]int64) string {
 		fmt.Fprintf(&b, " … and %s", trCount(int64(more), "more range", "more ranges"))
 	}
 	return b.String()
+}
+
+// trTextEpisodes is how many episode ids of a file a source's text shows
+// (negative goals can tie a source to most episodes of a partition).
+const trTextEpisodes = 10
+
+// trListText joins the first max items, then says how many more there are.
+func trListText(items []string, max int) string {
+	if len(items) <= max {
+		return strings.Join(items, ", ")
+	}
+	return strings.Join(items[:max], ", ") + fmt.Sprintf(" … and %d more", len(items)-max)
 }
 
 // trCount writes n and the noun in the number it needs.

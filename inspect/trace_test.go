@@ -1203,3 +1203,18 @@ parquet:
 		})
 	}
 }
+
+// TestTraceTextEpisodesCapped: a source's text lists at most ten episode ids
+// per file, then how many more; a shorter list is given whole.
+func TestTraceTextEpisodesCapped(t *testing.T) {
+	var ids []string
+	for i := range 12 {
+		ids = append(ids, fmt.Sprintf("u-%02d", i))
+	}
+	if got, want := trListText(ids, trTextEpisodes), "u-00, u-01, u-02, u-03, u-04, u-05, u-06, u-07, u-08, u-09 … and 2 more"; got != want {
+		t.Errorf("12 ids: %q, want %q", got, want)
+	}
+	if got, want := trListText(ids[:10], trTextEpisodes), strings.Join(ids[:10], ", "); got != want {
+		t.Errorf("10 ids: %q, want %q", got, want)
+	}
+}
