@@ -766,7 +766,7 @@ func TestVerify(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		if got, want := vfProblems(r), []string{"quarantine layout", "quarantine/a.jsonl extra"}; !slices.Equal(got, want) {
+		if got, want := vfProblems(r), []string{"quarantine layout", "quarantine quarantine_rows", "quarantine/a.jsonl extra"}; !slices.Equal(got, want) {
 			t.Errorf("quarantine without a path: problems %q, want %q", got, want)
 		}
 	})
@@ -867,8 +867,9 @@ func TestVerifyQuarantine(t *testing.T) {
 		{"extra file under quarantine/", func(t *testing.T, dir string) {
 			vfWriteTree(t, dir, map[string][]byte{"quarantine/extra.bin": []byte("stray")})
 		}, []string{"quarantine/extra.bin extra"}, "in the folder (5 bytes), not in the manifest"},
+		// Also no longer one row per dropped line (5 in the funnel).
 		{"rows edited", edit(func(q map[string]any) { q["rows"] = 6 }),
-			[]string{q + " rows"}, "footer says 5 rows, manifest 6"},
+			[]string{q + " quarantine_rows", q + " rows"}, "footer says 5 rows, manifest 6"},
 		{"sha256 edited", edit(func(q map[string]any) { q["sha256"] = strings.Repeat("0", 64) }),
 			[]string{q + " sha256"}, ""},
 		{"bytes edited", edit(func(q map[string]any) { q["bytes"] = 1 }),
@@ -899,7 +900,7 @@ func TestVerifyQuarantine(t *testing.T) {
 					}
 				}
 			})(t, dir)
-		}, []string{q + " footer_metadata"}, `footer table "frames", manifest "quarantine"`},
+		}, []string{q + " footer_metadata", q + " quarantine_rows"}, `footer table "frames", manifest "quarantine"`},
 		{"quarantine removed from the manifest", func(t *testing.T, dir string) {
 			vfEditManifest(t, dir, func(m map[string]any) { m["quarantine"] = nil })
 		}, []string{q + " extra"}, ""},

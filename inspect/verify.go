@@ -2,6 +2,7 @@ package inspect
 
 import (
 	"bytes"
+	"cmp"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -326,6 +327,10 @@ func vfManifest(m *pipeline.Manifest, files map[string]bool) []VerifyProblem {
 	}
 	if d := sum(f.Dropped); f.Lines != f.Frames+d {
 		add("funnel", "conservation", "lines %d ≠ frames %d + Σ dropped %d = %d", f.Lines, f.Frames, d, f.Frames+d)
+	}
+	// The quarantine holds every dropped line, one row each.
+	if q := m.Quarantine; q != nil && q.Rows != sum(f.Dropped) {
+		add(cmp.Or(q.Path, "quarantine"), "quarantine_rows", "quarantine has %d rows, the funnel drops %d lines", q.Rows, sum(f.Dropped))
 	}
 
 	var lines, dups int64
