@@ -36,6 +36,8 @@ import (
 	"hindcast/fleet"
 	"hindcast/internal/faultproxy"
 	"hindcast/internal/s3test"
+	"hindcast/pipeline"
+	"hindcast/stages"
 )
 
 // s3SetEnv points the SDK's default credential chain at the server's keys
@@ -661,5 +663,56 @@ storage:
 	if f.Lines != units*steps || f.Frames != units*steps-2 || f.Episodes != units ||
 		f.Dropped["image_missing"] != 1 || f.Dropped["image_corrupt"] != 1 {
 		t.Errorf("funnel %+v; want %d lines, %d frames, %d episodes, 1 image_missing, 1 image_corrupt", f, units*steps, units*steps-2, units)
+	}
+}
+
+// TestS3ObjectChangedSinceListing: an ingest item is keyed by the ETag the
+// listing gave. An object overwritten between listing and reading with
+// content of the same size (so only the ETag tells) fails its item, naming
+// the object, instead of sealing other content under that key.
+func TestS3ObjectChangedSinceListing(t *testing.T) {
+	const bucket = "hc-changed"
+	srv := s3test.Start(t, bucket)
+	s3SetEnv(t, srv)
+	ctx := context.Background()
+	c := srv.Client()
+	line := func(obs int) string {
+		return fmt.Sprintf(`{"unit":"c1","embodiment":"cart","t":%d,"obs":[%d,1]}`+"\n", 1000+obs, obs)
+	}
+	put := func(body string) {
+		if _, err := c.PutObject(ctx, &s3.PutObjectInput{Bucket: aws.String(bucket), Key: aws.String("logs/a.jsonl"), Body: strings.NewReader(body)}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	put(line(1) + line(2))
+	cfg, err := pipeline.ParseConfig([]byte(`dataset: changed
+source: {uri: "s3://`+bucket+`/logs/"}
+embodiments:
+  cart: {obs: 2, goal_tolerance: 0.1}
+storage: {endpoint: "`+srv.Endpoint+`"}
+`), t.TempDir(), "c.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	src, err := (&pipeline.Opener{Storage: cfg.Storage}).Open(ctx, "s3://"+bucket+"/logs/")
+	if err != nil {
+		t.Fatal(err)
+	}
+	env := &pipeline.Env{Config: cfg, Source: src, Work: pipeline.NewLocalStore(t.TempDir())}
+	objs, err := stages.ListSource(ctx, env)
+	if err != nil || len(objs) != 1 {
+		t.Fatalf("listing: %v, %v", objs, err)
+	}
+	put(line(3) + line(4)) // same size, other bytes
+	_, err = stages.Ingest{}.Do(ctx, env, pipeline.Item{ID: "a.jsonl", Key: "k", Meta: objs[0]})
+	if err == nil || !strings.Contains(err.Error(), "s3://"+bucket+"/logs/a.jsonl changed since it was listed (ETag ") {
+		t.Fatalf("ingest of an object overwritten since listing: %v; want an error naming it and its ETag", err)
+	}
+	objs, err = stages.ListSource(ctx, env)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := (stages.Ingest{}).Do(ctx, env, pipeline.Item{ID: "a.jsonl", Key: "k2", Meta: objs[0]}); err != nil {
+		t.Errorf("ingest after listing again: %v", err)
 	}
 }
