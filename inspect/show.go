@@ -339,11 +339,7 @@ func (r *ShowResult) WriteText(w io.Writer) error {
 	p.printf("digest    %s\n", r.Digest)
 
 	s := r.Sources
-	noun := "objects"
-	if s.Objects == 1 {
-		noun = "object"
-	}
-	p.printf("\nsources   %d %s, %s, %d duplicate, %d incomplete\n", s.Objects, noun, shBytes(s.Bytes), s.Duplicates, s.Incomplete)
+	p.printf("\nsources   %s, %s, %d duplicate, %d incomplete\n", trCount(s.Objects, "object", "objects"), shBytes(s.Bytes), s.Duplicates, s.Incomplete)
 	for _, k := range s.IncompleteKeys {
 		p.printf("  incomplete %s\n", k)
 	}
