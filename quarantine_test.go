@@ -62,17 +62,7 @@ embodiments:
   arm: {obs: 2, goal_tolerance: 0.1}
 episodes: {min_steps: 5}
 `
-	if err := os.WriteFile(filepath.Join(dir, "q.yaml"), []byte(cfgText), 0o644); err != nil {
-		t.Fatal(err)
-	}
-	cfg, err := pipeline.LoadConfig(filepath.Join(dir, "q.yaml"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	m, err := pipeline.Execute(context.Background(), cfg, stages.All(), pipeline.Options{Version: "v1", Parallel: 2})
-	if err != nil {
-		t.Fatal(err)
-	}
+	m := quarantineRun(t, dir, cfgText)
 	if m.Quarantine == nil {
 		t.Fatal("manifest has no quarantine file")
 	}
@@ -147,17 +137,7 @@ embodiments:
   arm: {obs: 2, goal_tolerance: 0.1}
 episodes: {min_steps: 2}
 `
-			if err := os.WriteFile(filepath.Join(dir, "q.yaml"), []byte(cfgText), 0o644); err != nil {
-				t.Fatal(err)
-			}
-			cfg, err := pipeline.LoadConfig(filepath.Join(dir, "q.yaml"))
-			if err != nil {
-				t.Fatal(err)
-			}
-			m, err := pipeline.Execute(context.Background(), cfg, stages.All(), pipeline.Options{Version: "v1", Parallel: 2})
-			if err != nil {
-				t.Fatal(err)
-			}
+			m := quarantineRun(t, dir, cfgText)
 			if m.Quarantine == nil || m.Quarantine.Rows != int64(c.lines) {
 				t.Fatalf("quarantine %+v, want %d rows", m.Quarantine, c.lines)
 			}
@@ -193,4 +173,22 @@ episodes: {min_steps: 2}
 			}
 		})
 	}
+}
+
+// quarantineRun writes the config to dir/q.yaml and runs the whole pipeline
+// on it as version v1.
+func quarantineRun(t *testing.T, dir, cfgText string) *pipeline.Manifest {
+	t.Helper()
+	if err := os.WriteFile(filepath.Join(dir, "q.yaml"), []byte(cfgText), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	cfg, err := pipeline.LoadConfig(filepath.Join(dir, "q.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := pipeline.Execute(context.Background(), cfg, stages.All(), pipeline.Options{Version: "v1", Parallel: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return m
 }

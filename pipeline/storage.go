@@ -311,15 +311,16 @@ func createTemp(dst string) (*os.File, error) {
 	return nil, fmt.Errorf("no free temporary name beside %s", dst)
 }
 
-// syncFolder makes a rename or link into dir durable: on POSIX file
-// systems the new name is only on disk once its folder is synced.
-func syncFolder(dir string) error {
-	d, err := os.Open(dir)
+// syncPath flushes a file's data, or a folder's names, to disk: on POSIX
+// file systems a rename or link into a folder is only durable once the
+// folder is synced.
+func syncPath(name string) error {
+	f, err := os.Open(name)
 	if err != nil {
 		return err
 	}
-	defer d.Close()
-	return d.Sync()
+	defer f.Close()
+	return f.Sync()
 }
 
 // Delete implements Store.
@@ -410,7 +411,7 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	if s.Durable {
 		// The work area writes without fsync; a published shard must be
 		// on disk before the manifest that names it.
-		if err := syncFile(orig); err != nil {
+		if err := syncPath(orig); err != nil {
 			return err
 		}
 	}
@@ -420,18 +421,9 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	err := os.Rename(tmp, dst)
 	os.Remove(tmp) // gone after a rename; there after a failed one
 	if err == nil && s.Durable {
-		err = syncFolder(filepath.Dir(dst))
+		err = syncPath(filepath.Dir(dst))
 	}
 	return err
-}
-
-func syncFile(name string) error {
-	f, err := os.Open(name)
-	if err != nil {
-		return err
-	}
-	defer f.Close()
-	return f.Sync()
 }
 
 type localUpload struct {
@@ -485,7 +477,7 @@ func (u *localUpload) syncFolder() error {
 	if !u.sync {
 		return nil
 	}
-	if err := syncFolder(filepath.Dir(u.dst)); err != nil {
+	if err := syncPath(filepath.Dir(u.dst)); err != nil {
 		return fmt.Errorf("commit %s: sync its folder: %w", u.uri, err)
 	}
 	return nil
