@@ -65,12 +65,19 @@ func Commit(ctx context.Context, work, out Store, m *Manifest, res *Result) erro
 	for _, f := range shards {
 		keep[prefix+f.path] = true
 	}
-	if err := clearUnfinished(ctx, out, prefix, keep); err != nil {
+	if err := clearUnfinished(ctx, out, prefix, keep); errors.Is(err, ErrVersionExists) {
+		return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix), ErrVersionExists)
+	} else if err != nil {
 		return fmt.Errorf("commit %s: clear what an unfinished commit left: %w", JoinURI(out.URI(), prefix), err)
 	}
 	for _, f := range shards {
 		if err := publish(ctx, work, f.work, out, prefix+f.path, f.sha); err != nil {
 			return fmt.Errorf("commit %s: %w", JoinURI(out.URI(), prefix+f.path), err)
+		}
+	}
+	if fs, ok := Unwrap(out).(FolderSyncer); ok {
+		if err := fs.SyncFolders(ctx, prefix); err != nil {
+			return fmt.Errorf("commit: %w", err)
 		}
 	}
 	b, err := json.MarshalIndent(m, "", "  ")
@@ -102,14 +109,23 @@ type UnfinishedDeleter interface {
 // neither can leave a version that lacks one of its files.
 func clearUnfinished(ctx context.Context, out Store, prefix string, keep map[string]bool) error {
 	var stale []string
+	committed := false
 	err := out.List(ctx, prefix, func(o ObjectInfo) error {
-		if !keep[o.Key] {
+		switch {
+		case o.Key == prefix+ManifestName:
+			// Another commit of this version finished since our check:
+			// the folder is a version now, and never touched again.
+			committed = true
+		case !keep[o.Key]:
 			stale = append(stale, o.Key)
 		}
 		return nil
 	})
 	if err != nil && !errors.Is(err, ErrNotFound) {
 		return err
+	}
+	if committed {
+		return ErrVersionExists
 	}
 	for _, k := range stale {
 		if err := out.Delete(ctx, k); err != nil {
@@ -120,6 +136,12 @@ func clearUnfinished(ctx context.Context, out Store, prefix string, keep map[str
 		return u.DeleteUnfinished(ctx, prefix)
 	}
 	return nil
+}
+
+// FolderSyncer is implemented by stores whose new folders must be synced to
+// be durable (local file systems).
+type FolderSyncer interface {
+	SyncFolders(ctx context.Context, prefix string) error
 }
 
 // Linker is implemented by stores that can publish another store's object

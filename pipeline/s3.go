@@ -357,8 +357,11 @@ func (s *S3Store) DeleteUnfinished(ctx context.Context, prefix string) error {
 			})
 			return err
 		})
-		if isStatus(err, http.StatusNotImplemented) {
-			return nil // a store without the call: nothing can be pending that it would list
+		if isStatus(err, http.StatusNotImplemented) || isStatus(err, http.StatusForbidden) {
+			// A store without the call, or credentials without
+			// s3:ListBucketMultipartUploads: what is pending cannot be
+			// seen, so a bucket lifecycle rule has to abort it.
+			return nil
 		}
 		if err != nil {
 			return fmt.Errorf("list pending uploads %s: %w", s.uriOf(prefix), mapS3Error(err))

@@ -951,6 +951,26 @@ func TestS3WithoutConditionalWrites(t *testing.T) {
 		}
 	})
 
+	t.Run("NoPendingUploadsPermission", func(t *testing.T) {
+		s, m := r.store(t, "", StorageConfig{Attempts: 4})
+		if err := Put(ctx, s, "w/item2/a.bin", []byte("a"), false); err != nil {
+			t.Fatal(err)
+		}
+		before := r.fp.Injected()[faultproxy.AccessDenied403]
+		r.fp.Set(faultproxy.Rule{Kind: faultproxy.AccessDenied403, Method: http.MethodGet, Query: "uploads"})
+		err := DeletePrefix(ctx, s, "w/item2/")
+		r.fp.Set()
+		if err != nil {
+			t.Fatalf("clearing a folder without the permission to list pending uploads: %v", err)
+		}
+		if _, err := s.Stat(ctx, "w/item2/a.bin"); !errors.Is(err, ErrNotFound) {
+			t.Errorf("object after clearing its folder: %v, want ErrNotFound", err)
+		}
+		if got := r.fp.Injected()[faultproxy.AccessDenied403] - before; got != 1 || m.Retries.Load() != 0 {
+			t.Errorf("%d answers of 403, %d retries; want 1, 0", got, m.Retries.Load())
+		}
+	})
+
 	t.Run("NoPendingUploadsCall", func(t *testing.T) {
 		s, m := r.store(t, "", StorageConfig{Attempts: 4})
 		if err := Put(ctx, s, "w/item/a.bin", []byte("a"), false); err != nil {

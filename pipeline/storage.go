@@ -224,6 +224,18 @@ func (s *LocalStore) List(ctx context.Context, prefix string, fn func(ObjectInfo
 		if err != nil {
 			return err
 		}
+		if d.Type()&fs.ModeSymlink != 0 {
+			// A linked object is what it links to (Open follows the link):
+			// its size and time, not the link's. A link to a folder is no
+			// object; a broken one stays listed, so that reading it fails
+			// naming it.
+			if to, err := os.Stat(p); err == nil {
+				if to.IsDir() {
+					return nil
+				}
+				info = to
+			}
+		}
 		keys = append(keys, localInfo(key, info))
 		return nil
 	})
@@ -323,6 +335,33 @@ func syncPath(name string) error {
 	return f.Sync()
 }
 
+// SyncFolders implements FolderSyncer: for a durable store it syncs every
+// folder under prefix and each folder above it up to the store's root, so
+// that folders made for a version (its own, frames/, split=…/) are on disk
+// with their names before the manifest that makes the version exist.
+func (s *LocalStore) SyncFolders(ctx context.Context, prefix string) error {
+	if !s.Durable {
+		return nil
+	}
+	start := s.Path(prefix)
+	err := filepath.WalkDir(start, func(p string, d fs.DirEntry, err error) error {
+		if err != nil {
+			return err
+		}
+		if d.IsDir() {
+			return syncPath(p)
+		}
+		return nil
+	})
+	for dir := filepath.Dir(start); err == nil && strings.HasPrefix(dir, s.root) && dir != filepath.Dir(s.root); dir = filepath.Dir(dir) {
+		err = syncPath(dir)
+	}
+	if err != nil {
+		return fmt.Errorf("sync %s: %w", JoinURI(s.URI(), prefix), err)
+	}
+	return nil
+}
+
 // Delete implements Store.
 func (s *LocalStore) Delete(ctx context.Context, key string) error {
 	if err := os.Remove(s.Path(key)); err != nil && !errors.Is(err, fs.ErrNotExist) {
@@ -400,6 +439,9 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	// links of one file does nothing and would leave the temporary link.
 	if a, err := os.Stat(orig); err == nil {
 		if b, err := os.Stat(dst); err == nil && os.SameFile(a, b) {
+			if s.Durable {
+				return syncPath(orig) // the crash may have come before its sync
+			}
 			return nil
 		}
 	}

@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"slices"
+	"strings"
 	"syscall"
 	"testing"
 )
@@ -55,6 +56,36 @@ func TestLocalStoreList(t *testing.T) {
 	err := NewLocalStore(filepath.Join(t.TempDir(), "missing")).List(context.Background(), "", func(ObjectInfo) error { return nil })
 	if !errors.Is(err, ErrNotFound) {
 		t.Errorf("list of a missing root: %v, want ErrNotFound", err)
+	}
+}
+
+// TestLocalStoreListSymlinks: a source folder made of links (as a mirror
+// of another folder often is) lists each linked file with the size of what
+// it links to, which is what Open reads; a link to a folder is no object; a
+// broken link is listed (reading it then fails, naming it).
+func TestLocalStoreListSymlinks(t *testing.T) {
+	ctx := context.Background()
+	target := t.TempDir()
+	if err := os.WriteFile(filepath.Join(target, "a.jsonl"), []byte("0123456789"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	s := NewLocalStore(t.TempDir())
+	for name, to := range map[string]string{
+		"a.jsonl": filepath.Join(target, "a.jsonl"), "dir": target, "broken.jsonl": filepath.Join(target, "none"),
+	} {
+		if err := os.Symlink(to, s.Path(name)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var got []ObjectInfo
+	if err := s.List(ctx, "", func(o ObjectInfo) error { got = append(got, o); return nil }); err != nil {
+		t.Fatal(err)
+	}
+	if len(got) != 2 || got[0].Key != "a.jsonl" || got[0].Size != 10 || got[1].Key != "broken.jsonl" {
+		t.Errorf("listed %+v, want a.jsonl (10 bytes) and broken.jsonl", got)
+	}
+	if _, err := s.Open(ctx, "broken.jsonl", 0); !errors.Is(err, ErrNotFound) || !strings.Contains(err.Error(), "broken.jsonl") {
+		t.Errorf("open of a broken link: %v, want ErrNotFound naming it", err)
 	}
 }
 
@@ -157,6 +188,15 @@ func TestClearUnfinished(t *testing.T) {
 	if err := clearUnfinished(ctx, s, "ds/v3/", keep); err != nil {
 		t.Errorf("clearing a folder that does not exist: %v", err)
 	}
+	// A commit of the same version that finished meanwhile: the folder is
+	// a version now, and nothing in it is touched.
+	localWrite(t, s, "ds/v2/manifest.json", "{}")
+	if err := clearUnfinished(ctx, s, "ds/v2/", keep); !errors.Is(err, ErrVersionExists) {
+		t.Errorf("clearing a folder that became a version: %v, want ErrVersionExists", err)
+	}
+	if got, want := localKeys(t, s, "ds/v2/"), []string{"ds/v2/manifest.json", "ds/v2/pairs/part-99999.parquet"}; !slices.Equal(got, want) {
+		t.Errorf("keys of the version after a refused clearing: %q, want %q", got, want)
+	}
 }
 
 // TestLocalStoreFileMode: a committed file gets the mode any tool's new file
@@ -195,5 +235,27 @@ func TestLocalStoreFileMode(t *testing.T) {
 		if got.Mode().Perm() != want.Mode().Perm() || got.Mode().Perm() != 0o644 {
 			t.Errorf("%s: mode %v, want %v (what os.Create gives under umask 022)", k, got.Mode().Perm(), want.Mode().Perm())
 		}
+	}
+}
+
+// TestLocalStoreSyncFolders: a durable store syncs the folders under a
+// prefix and those above it up to its root, and fails naming the prefix
+// when one cannot be synced (here: it does not exist); a store that is not
+// durable does nothing.
+func TestLocalStoreSyncFolders(t *testing.T) {
+	ctx := context.Background()
+	s := NewLocalStore(t.TempDir())
+	s.Durable = true
+	localWrite(t, s, "ds/v1/frames/split=train/part-00000.parquet", "PAR1")
+	if err := s.SyncFolders(ctx, "ds/v1/"); err != nil {
+		t.Fatalf("sync of a version's folders: %v", err)
+	}
+	err := s.SyncFolders(ctx, "ds/none/")
+	if err == nil || !strings.Contains(err.Error(), "ds/none/") {
+		t.Errorf("sync of a missing folder: %v, want an error naming it", err)
+	}
+	s.Durable = false
+	if err := s.SyncFolders(ctx, "ds/none/"); err != nil {
+		t.Errorf("a store that is not durable syncs nothing: %v", err)
 	}
 }

@@ -1047,3 +1047,27 @@ func TestIngestZstdWindowBound(t *testing.T) {
 		t.Errorf("an object declaring a 1 MiB window: incomplete, want read whole")
 	}
 }
+
+// TestIngestSymlinkedObject: a source object that is a link to a file is
+// read as that file, whatever the link's own size: the check that an object
+// still matches its listing compares with what the link points to.
+func TestIngestSymlinkedObject(t *testing.T) {
+	dir := t.TempDir()
+	body := jsonLines(armLine("s1", 1000, ""), armLine("s1", 2000, ""), armLine("s1", 3000, ""))
+	writeTree(t, filepath.Join(dir, "elsewhere"), map[string][]byte{"a.jsonl": body})
+	writeTree(t, filepath.Join(dir, "src"), nil)
+	if err := os.Symlink(filepath.Join(dir, "elsewhere", "a.jsonl"), filepath.Join(dir, "src", "a.jsonl")); err != nil {
+		t.Fatal(err)
+	}
+	cfg, err := pipeline.ParseConfig(withLocations(t, fixtureConfig(1000), "src", "work", "out"), dir, "c.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := pipeline.Execute(context.Background(), cfg, All(), pipeline.Options{Version: "v1", Parallel: 2})
+	if err != nil {
+		t.Fatalf("run over a linked object: %v", err)
+	}
+	srcs := []srcWant{{"a.jsonl", 3, 3, nil}}
+	wantSource(t, m, "a.jsonl", 3, 3, nil)
+	wantFunnel(t, m, funnelOf(1, 0, srcs, 3, 1, 2))
+}

@@ -53,6 +53,9 @@ const (
 	// without forwarding: a store that lacks a call or a header (such as a
 	// conditional write), not a transient fault.
 	NotImplemented501
+	// AccessDenied403 answers 403 with an S3 AccessDenied XML body, without
+	// forwarding: credentials that lack one permission.
+	AccessDenied403
 	numKinds
 )
 
@@ -70,6 +73,8 @@ func (k Kind) String() string {
 		return "Delay"
 	case NotImplemented501:
 		return "NotImplemented501"
+	case AccessDenied403:
+		return "AccessDenied403"
 	}
 	return "Kind(" + strconv.Itoa(int(k)) + ")"
 }
@@ -323,6 +328,8 @@ func (p *Proxy) ServeHTTP(w http.ResponseWriter, req *http.Request) {
 		s3Error(w, req, http.StatusServiceUnavailable, "SlowDown", "Please reduce your request rate.")
 	case NotImplemented501:
 		s3Error(w, req, http.StatusNotImplemented, "NotImplemented", "A header you provided implies functionality that is not implemented.")
+	case AccessDenied403:
+		s3Error(w, req, http.StatusForbidden, "AccessDenied", "Access Denied")
 	case Reset:
 		abort(w, true)
 	case CutBody:

@@ -227,10 +227,11 @@ type s3ErrorDoc struct {
 	RequestID string `xml:"RequestId"`
 }
 
-// Status500, SlowDown503 and NotImplemented501 answer without forwarding,
+// Status500, SlowDown503, NotImplemented501 and AccessDenied403 answer
+// without forwarding,
 // with the status and the S3 error code that S3 uses for them (AWS S3 API
 // Reference, "List of error codes": InternalError 500, SlowDown 503,
-// NotImplemented 501; the messages are from memory).
+// NotImplemented 501, AccessDenied 403; the messages are from memory).
 func TestErrorStatuses(t *testing.T) {
 	for _, c := range []struct {
 		kind    Kind
@@ -241,6 +242,7 @@ func TestErrorStatuses(t *testing.T) {
 		{Status500, 500, "InternalError", "We encountered an internal error. Please try again."},
 		{SlowDown503, 503, "SlowDown", "Please reduce your request rate."},
 		{NotImplemented501, 501, "NotImplemented", "A header you provided implies functionality that is not implemented."},
+		{AccessDenied403, 403, "AccessDenied", "Access Denied"},
 	} {
 		t.Run(c.kind.String(), func(t *testing.T) {
 			tg := newTarget(t)
@@ -630,8 +632,8 @@ func TestSetRejectsInvalidRules(t *testing.T) {
 }
 
 func TestKindString(t *testing.T) {
-	got := []string{Status500.String(), SlowDown503.String(), Reset.String(), CutBody.String(), Delay.String(), NotImplemented501.String(), Kind(7).String()}
-	want := []string{"Status500", "SlowDown503", "Reset", "CutBody", "Delay", "NotImplemented501", "Kind(7)"}
+	got := []string{Status500.String(), SlowDown503.String(), Reset.String(), CutBody.String(), Delay.String(), NotImplemented501.String(), AccessDenied403.String(), Kind(9).String()}
+	want := []string{"Status500", "SlowDown503", "Reset", "CutBody", "Delay", "NotImplemented501", "AccessDenied403", "Kind(9)"}
 	if !slices.Equal(got, want) {
 		t.Fatalf("%q, want %q", got, want)
 	}
