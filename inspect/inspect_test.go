@@ -703,18 +703,7 @@ func TestVerify(t *testing.T) {
 			if got := vfProblems(r); r.OK() || !slices.Equal(got, c.want) {
 				t.Fatalf("problems %q, want %q\n%+v", got, c.want, r.Problems)
 			}
-			var buf bytes.Buffer
-			if err := r.WriteText(&buf); err != nil {
-				t.Fatal(err)
-			}
-			word := "problems"
-			if len(c.want) == 1 {
-				word = "problem"
-			}
-			if !strings.Contains(buf.String(), fmt.Sprintf("FAILED: %d %s\n", len(c.want), word)) ||
-				!strings.Contains(buf.String(), r.Problems[0].Subject) {
-				t.Errorf("text:\n%s", buf.String())
-			}
+			vfCheckFailedText(t, r, len(c.want))
 		})
 	}
 
@@ -919,18 +908,7 @@ func TestVerifyQuarantine(t *testing.T) {
 			if c.detail != "" && r.Problems[0].Detail != c.detail {
 				t.Errorf("detail %q, want %q", r.Problems[0].Detail, c.detail)
 			}
-			var buf bytes.Buffer
-			if err := r.WriteText(&buf); err != nil {
-				t.Fatal(err)
-			}
-			word := "problems"
-			if len(c.want) == 1 {
-				word = "problem"
-			}
-			if !strings.Contains(buf.String(), fmt.Sprintf("FAILED: %d %s\n", len(c.want), word)) ||
-				!strings.Contains(buf.String(), r.Problems[0].Subject) {
-				t.Errorf("text:\n%s", buf.String())
-			}
+			vfCheckFailedText(t, r, len(c.want))
 		})
 	}
 
@@ -1297,5 +1275,23 @@ func TestVerifyS3(t *testing.T) {
 	want := []string{pairsPath + " bytes", pairsPath + " footer", pairsPath + " sha256", "probe extra"}
 	if got := vfProblems(r); !slices.Equal(got, want) {
 		t.Errorf("problems %q, want %q", got, want)
+	}
+}
+
+// vfCheckFailedText checks verify's text for a failed version: the count of
+// problems, and the subject of the first.
+func vfCheckFailedText(t *testing.T, r *VerifyResult, problems int) {
+	t.Helper()
+	var buf bytes.Buffer
+	if err := r.WriteText(&buf); err != nil {
+		t.Fatal(err)
+	}
+	word := "problems"
+	if problems == 1 {
+		word = "problem"
+	}
+	if !strings.Contains(buf.String(), fmt.Sprintf("FAILED: %d %s\n", problems, word)) ||
+		!strings.Contains(buf.String(), r.Problems[0].Subject) {
+		t.Errorf("text:\n%s", buf.String())
 	}
 }
