@@ -274,7 +274,7 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 		}
 	}
 	if c.Version != "" {
-		if err := checkVersion(c.Version); err != nil {
+		if err := pipeline.ValidVersion(c.Version); err != nil {
 			return nil, usageError{err: err, cmd: c.Name}
 		}
 	}
@@ -298,10 +298,6 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 	}
 	return c, nil
 }
-
-// checkVersion is pipeline.ValidVersion with a message that fits the two
-// names it rejects although they are made of allowed characters.
-func checkVersion(v string) error { return pipeline.ValidVersion(v) }
 
 func main() {
 	tuneGC()
