@@ -324,25 +324,10 @@ func (s *S3Store) Delete(ctx context.Context, key string) error {
 	return nil
 }
 
-// DeleteFolder removes every object under prefix and aborts the multipart
-// uploads still pending there: a writer killed mid-upload cannot abort its
-// own, and its parts are invisible to List but stored (and billed) until
-// aborted. DeletePrefix calls it to clear a stage item before it is redone.
-func (s *S3Store) DeleteFolder(ctx context.Context, prefix string) error {
-	var keys []string
-	if err := s.List(ctx, prefix, func(o ObjectInfo) error { keys = append(keys, o.Key); return nil }); err != nil && !errors.Is(err, ErrNotFound) {
-		return err
-	}
-	for _, k := range keys {
-		if err := s.Delete(ctx, k); err != nil {
-			return err
-		}
-	}
-	return s.DeleteUnfinished(ctx, prefix)
-}
-
 // DeleteUnfinished implements UnfinishedDeleter: it aborts the multipart
-// uploads pending under prefix.
+// uploads pending under prefix. A writer killed mid-upload cannot abort its
+// own; DeletePrefix (an item redone) and a commit over an unfinished version
+// call this.
 func (s *S3Store) DeleteUnfinished(ctx context.Context, prefix string) error {
 	var keyMarker, idMarker *string
 	for {

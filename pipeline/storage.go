@@ -389,6 +389,11 @@ func DeletePrefix(ctx context.Context, s Store, prefix string) error {
 			return err
 		}
 	}
+	// What a killed writer left that List does not show (S3: its pending
+	// multipart uploads, stored and billed until aborted).
+	if u, ok := Unwrap(s).(UnfinishedDeleter); ok {
+		return u.DeleteUnfinished(ctx, prefix)
+	}
 	return nil
 }
 
