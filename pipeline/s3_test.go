@@ -683,14 +683,13 @@ func TestS3Multipart(t *testing.T) {
 		if len(puts) != 1 || len(multipart) != 0 || m.Requests.Load() != 1 {
 			t.Errorf("%d PUTs, %d multipart requests, %d requests; want 1 PUT and nothing else", len(puts), len(multipart), m.Requests.Load())
 		}
-		// Straight to the server: a proxy in between turns the server's
-		// early 412 to a large PUT into a broken pipe.
-		direct, err := NewS3Store(ctx, "s3://"+r.bucket+"/mp/", StorageConfig{Endpoint: r.srv.Endpoint, PartSize: 5 * mib, Attempts: 4}, &Metrics{})
-		if err != nil {
-			t.Fatal(err)
-		}
-		if err := Put(ctx, direct, "v9/manifest.json", s3Bytes(28, 6*mib), true); !errors.Is(err, ErrExists) {
-			t.Errorf("second exclusive put of 6 MiB: %v, want ErrExists", err)
+		// The key is taken now. A small body: the server answers 412
+		// before reading a large one and resets the connection while the
+		// client still writes it, so a large refused PUT may end as a
+		// reset instead of the 412 (seen with versitygw, with or without
+		// the proxy).
+		if err := Put(ctx, s, "v9/manifest.json", s3Bytes(28, 1024), true); !errors.Is(err, ErrExists) {
+			t.Errorf("second exclusive put: %v, want ErrExists", err)
 		}
 		if got := r.get(t, "mp/v9/manifest.json"); sha256.Sum256(got) != sha256.Sum256(data) {
 			t.Error("object replaced by a refused exclusive put")
