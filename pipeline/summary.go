@@ -28,6 +28,15 @@ const (
 	Duplicate         = "duplicate"
 	Conflict          = "conflict"
 	ShortEpisode      = "short_episode"
+	// Stale is SPEC §7.4's first reason for a recording's tick.
+	Stale = "stale"
+)
+
+// Reasons a recording is skipped whole (SPEC §7.1), in the order they apply.
+const (
+	SkipUnreadable        = "unreadable"
+	SkipNoUnit            = "no_unit"
+	SkipUnknownEmbodiment = "unknown_embodiment"
 )
 
 // Reasons lists every drop reason in report order.
