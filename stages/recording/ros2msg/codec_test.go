@@ -256,3 +256,33 @@ func TestDecodeRefusals(t *testing.T) {
 		}
 	}
 }
+
+// TestDecodeBounds: a string or sequence longer than its declared bound is
+// an error, as Encode refuses to write one.
+func TestDecodeBounds(t *testing.T) {
+	loose, err := Parse("t/B", []byte("string s\nint8[] q\n"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	tight, err := Parse("t/B", []byte("string<=3 s\nint8[<=2] q\n"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, tc := range []struct {
+		v    map[string]any
+		want string
+	}{
+		{map[string]any{"s": "abc", "q": []int{1, 2}}, ""},
+		{map[string]any{"s": "abcd"}, "field s: string of 4 bytes longer than its bound 3"},
+		{map[string]any{"q": []int{1, 2, 3}}, "field q: 3 elements in a sequence bounded to 2"},
+	} {
+		b, err := loose.Encode(tc.v, false)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, err = tight.Decode(b)
+		if tc.want == "" && err != nil || tc.want != "" && (err == nil || !strings.Contains(err.Error(), tc.want)) {
+			t.Fatalf("%v: err %v, want %q", tc.v, err, tc.want)
+		}
+	}
+}

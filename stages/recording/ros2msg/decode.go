@@ -182,7 +182,11 @@ func (d *decoder) message(t *msgType) (map[string]any, error) {
 		default:
 			var n int
 			if n, err = d.count(f.elemMin()); err == nil {
-				v, err = d.array(f, n)
+				if f.n > 0 && n > f.n {
+					err = fmt.Errorf("%d elements in a sequence bounded to %d", n, f.n)
+				} else {
+					v, err = d.array(f, n)
+				}
 			}
 		}
 		if err != nil {
@@ -209,7 +213,7 @@ func (d *decoder) single(f *field) (any, error) {
 	case kMessage:
 		return d.message(f.msg)
 	case kString:
-		return d.str()
+		return d.str(f.strN)
 	}
 	sz := f.kind.size()
 	d.align(sz)
@@ -248,7 +252,10 @@ func (d *decoder) single(f *field) (any, error) {
 
 // str reads a string: a uint32 length counting the terminating NUL, then the
 // bytes. A length of 0 (written by some implementations for "") is accepted.
-func (d *decoder) str() (string, error) {
+// A string longer than its bound (bound > 0) is an error, as a sequence
+// longer than its bound is: a conforming writer never sends one, and Encode
+// refuses to write one.
+func (d *decoder) str(bound int) (string, error) {
 	d.align(4)
 	if err := d.need(4); err != nil {
 		return "", err
@@ -261,6 +268,9 @@ func (d *decoder) str() (string, error) {
 	d.off += n
 	if n > 0 && p[n-1] == 0 {
 		p = p[:n-1]
+	}
+	if bound > 0 && len(p) > bound {
+		return "", fmt.Errorf("string of %d bytes longer than its bound %d", len(p), bound)
 	}
 	return string(p), nil
 }
@@ -284,7 +294,7 @@ func (d *decoder) array(f *field, n int) (any, error) {
 	case kString:
 		out := make([]string, n)
 		for i := range out {
-			s, err := d.str()
+			s, err := d.str(f.strN)
 			if err != nil {
 				return nil, fmt.Errorf("[%d]: %w", i, err)
 			}
