@@ -256,21 +256,13 @@ func (d *decoder) single(f *field) (any, error) {
 // longer than its bound is: a conforming writer never sends one, and Encode
 // refuses to write one.
 func (d *decoder) str(bound int) (string, error) {
-	d.align(4)
-	if err := d.need(4); err != nil {
+	lo, err := d.strSpan(bound)
+	if err != nil {
 		return "", err
 	}
-	n := int(d.u32())
-	if err := d.need(n); err != nil {
-		return "", err
-	}
-	p := d.b[d.off : d.off+n]
-	d.off += n
-	if n > 0 && p[n-1] == 0 {
-		p = p[:n-1]
-	}
-	if bound > 0 && len(p) > bound {
-		return "", fmt.Errorf("string of %d bytes longer than its bound %d", len(p), bound)
+	p := d.b[lo:d.off]
+	if k := len(p); k > 0 && p[k-1] == 0 {
+		p = p[:k-1]
 	}
 	return string(p), nil
 }
@@ -292,15 +284,7 @@ func (d *decoder) array(f *field, n int) (any, error) {
 		}
 		return out, nil
 	case kString:
-		out := make([]string, n)
-		for i := range out {
-			s, err := d.str(f.strN)
-			if err != nil {
-				return nil, fmt.Errorf("[%d]: %w", i, err)
-			}
-			out[i] = s
-		}
-		return out, nil
+		return d.strings(n, f.strN)
 	}
 	sz := f.kind.size()
 	if n > 0 {
@@ -401,4 +385,50 @@ func (d *decoder) array(f *field, n int) (any, error) {
 		return out, nil
 	}
 	return nil, fmt.Errorf("type %s: %w", f.ftype, ErrUnsupported)
+}
+
+// strings reads n strings with one allocation for all their bytes: a first
+// walk checks them and finds where they end, then one Go string is made of
+// the whole stretch (lengths and padding included) and each element is a
+// substring of it.
+func (d *decoder) strings(n, bound int) ([]string, error) {
+	start := d.off
+	for i := range n {
+		if _, err := d.strSpan(bound); err != nil {
+			return nil, fmt.Errorf("[%d]: %w", i, err)
+		}
+	}
+	whole := string(d.b[start:d.off])
+	d.off = start
+	out := make([]string, n)
+	for i := range out {
+		lo, _ := d.strSpan(bound)
+		out[i] = whole[lo-start : d.off-start]
+		if k := len(out[i]); k > 0 && out[i][k-1] == 0 {
+			out[i] = out[i][:k-1]
+		}
+	}
+	return out, nil
+}
+
+// strSpan steps over one string and returns where its bytes begin.
+func (d *decoder) strSpan(bound int) (int, error) {
+	d.align(4)
+	if err := d.need(4); err != nil {
+		return 0, err
+	}
+	n := int(d.u32())
+	if err := d.need(n); err != nil {
+		return 0, err
+	}
+	lo := d.off
+	d.off += n
+	k := n
+	if k > 0 && d.b[d.off-1] == 0 {
+		k--
+	}
+	if bound > 0 && k > bound {
+		return 0, fmt.Errorf("string of %d bytes longer than its bound %d", k, bound)
+	}
+	return lo, nil
 }
