@@ -22,7 +22,9 @@
 // uint8…uint64, float32, float64, string and bounded string<=N; fixed arrays
 // T[N], bounded sequences T[<=N] and sequences T[] of any of them and of
 // messages; nested and dependency message types; constants and default values
-// are accepted and ignored. Encapsulations: plain CDR (XCDR1) in either byte
+// are accepted and ignored. A string or sequence longer than its declared
+// bound is undecodable (a conforming writer never sends one; Encode refuses
+// to write one). Encapsulations: plain CDR (XCDR1) in either byte
 // order (ids 0x00, 0x01), and plain CDR2 (XCDR2 FINAL, ids 0x06, 0x07, 8-byte
 // values aligned to 4) for types without arrays of strings or messages (DDS
 // implementations disagree on whether those carry a delimiter header in
