@@ -286,3 +286,48 @@ func TestDecodeBounds(t *testing.T) {
 		}
 	}
 }
+
+// TestConcurrentDecode: one Schema decodes from several goroutines at once
+// (run with -race); every goroutine gets the single-threaded result.
+func TestConcurrentDecode(t *testing.T) {
+	fs := loadFixtures(t)
+	type job struct {
+		s    *Schema
+		p    []byte
+		want map[string]any
+	}
+	var jobs []job
+	for _, f := range fs {
+		s, err := Parse(f.Schema, f.text)
+		if err != nil {
+			t.Fatal(err)
+		}
+		v, err := s.Decode(f.payload)
+		if err != nil {
+			t.Fatal(err)
+		}
+		jobs = append(jobs, job{s, f.payload, v})
+	}
+	errs := make(chan error, 4)
+	for g := range 4 {
+		go func() {
+			for i := range 50 {
+				j := jobs[(i+g)%len(jobs)]
+				v, err := j.s.Decode(j.p)
+				if err == nil && !reflect.DeepEqual(v, j.want) {
+					err = errors.New(j.s.Name + ": differs when decoded concurrently")
+				}
+				if err != nil {
+					errs <- err
+					return
+				}
+			}
+			errs <- nil
+		}()
+	}
+	for range 4 {
+		if err := <-errs; err != nil {
+			t.Fatal(err)
+		}
+	}
+}
