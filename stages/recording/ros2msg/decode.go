@@ -136,6 +136,17 @@ func (d *decoder) u64() uint64 {
 	return binary.LittleEndian.Uint64(p)
 }
 
+// length reads a uint32 count or string length, as an int that stays
+// positive on 32-bit platforms too (a count beyond MaxInt32 cannot fit in
+// any payload, so clamping it keeps it an error).
+func (d *decoder) length() int {
+	u := d.u32()
+	if u > math.MaxInt32 {
+		return math.MaxInt32
+	}
+	return int(u)
+}
+
 // count reads a sequence count and checks that count elements of at least
 // elemMin bytes each fit in what is left, before anything is allocated.
 func (d *decoder) count(elemMin int) (int, error) {
@@ -143,7 +154,7 @@ func (d *decoder) count(elemMin int) (int, error) {
 	if err := d.need(4); err != nil {
 		return 0, err
 	}
-	n := int(d.u32())
+	n := d.length()
 	if err := d.fits(n, elemMin); err != nil {
 		return 0, err
 	}
@@ -417,7 +428,7 @@ func (d *decoder) strSpan(bound int) (int, error) {
 	if err := d.need(4); err != nil {
 		return 0, err
 	}
-	n := int(d.u32())
+	n := d.length()
 	if err := d.need(n); err != nil {
 		return 0, err
 	}

@@ -87,14 +87,12 @@ type rawType struct {
 }
 
 type rawField struct {
-	line  int // 1-based line number in the schema text, for errors
-	typ   string
-	name  string
-	arr   arrayKind
-	n     int
-	strN  int
-	base  string // type name without bounds and array suffix
-	isStr bool
+	typ  string
+	name string
+	arr  arrayKind
+	n    int
+	strN int
+	base string // type name without bounds and array suffix
 }
 
 // builtinFallback holds the builtin_interfaces types, used only when a schema
@@ -220,7 +218,6 @@ func splitSections(rootName string, data []byte) (map[string]*rawType, error) {
 		if skip {
 			continue
 		}
-		f.line = lineNo
 		cur.lines = append(cur.lines, f)
 	}
 	if expectMSG {
@@ -371,12 +368,11 @@ func (r *resolver) resolve(n string, d int) (*msgType, error) {
 			return nil, fmt.Errorf("unknown type %s", n)
 		}
 		raw = &rawType{name: n, pkg: pkgOf(n)}
-		for i, l := range strings.Split(strings.TrimSpace(text), "\n") {
+		for _, l := range strings.Split(strings.TrimSpace(text), "\n") {
 			f, _, err := parseLine(l)
 			if err != nil {
 				return nil, err
 			}
-			f.line = i + 1
 			raw.lines = append(raw.lines, f)
 		}
 	}
@@ -456,7 +452,7 @@ func (r *resolver) typeName(pkg, base string) string {
 	return own
 }
 
-const satMax = 1 << 40
+const satMax = 1 << 30
 
 func satAdd(a, b int) int {
 	if a+b > satMax {

@@ -206,3 +206,20 @@ func TestPkgMsgTypeSamePayload(t *testing.T) {
 	}
 	t.Fatal("no all_types fixture")
 }
+
+// TestParseCRLF: a schema saved with Windows line ends parses alike.
+func TestParseCRLF(t *testing.T) {
+	for _, f := range loadFixtures(t) {
+		a, err := Parse(f.Schema, f.text)
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := Parse(f.Schema, []byte(strings.ReplaceAll(string(f.text), "\n", "\r\n")))
+		if err != nil {
+			t.Fatalf("%s with CRLF: %v", f.File, err)
+		}
+		if layout(a.root) != layout(b.root) {
+			t.Fatalf("%s: CRLF layout differs", f.File)
+		}
+	}
+}
