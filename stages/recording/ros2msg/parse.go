@@ -248,8 +248,7 @@ func parseLine(text string) (f rawField, skip bool, err error) {
 		return f, false, fmt.Errorf("bad field name in %q", clip(text))
 	}
 	if strings.HasPrefix(after, "=") {
-		// A constant: its type must still be a primitive, but it is not on
-		// the wire.
+		// A constant: its value is not on the wire.
 		return f, true, nil
 	}
 	// Anything else after the name, up to a comment, is a default value;
