@@ -13,6 +13,8 @@ import (
 	"os"
 	"path"
 	"path/filepath"
+	"regexp"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -37,6 +39,27 @@ const (
 	defaultFinal        = 1
 	defaultGamma        = 0.99
 	defaultRowGroupRows = 65536
+	// defaultMaxImageBytes is SPEC §1's source.max_image_bytes (16 MiB).
+	defaultMaxImageBytes = 16 << 20
+	// maxMaxImageBytes bounds source.max_image_bytes: one image is held
+	// whole in memory while it is checked, so its bound is a memory bound.
+	maxMaxImageBytes = 1 << 30
+	// maxPartitions bounds partitions: every stage keeps per-partition
+	// state (open writers, counters), so their number drives memory.
+	maxPartitions = 4096
+	// maxRowGroupRows bounds parquet.row_group_rows: pack buffers one row
+	// group in memory before writing it.
+	maxRowGroupRows = 1 << 20
+	// maxEpisodeSteps bounds episodes.min_steps/max_steps: episodes and goals
+	// hold one whole episode (max_steps frames) in memory.
+	maxEpisodeSteps = 1_000_000
+	// maxGoalsPerStrategy bounds goals.future, geometric, final and negative:
+	// each step yields that many pairs, allocated per step.
+	maxGoalsPerStrategy = 1024
+	// maxFrameSources bounds the sources of one frames list.
+	maxFrameSources = 1024
+	// maxRate bounds frames.rate: the period round(1e9/rate) ns must be >= 1.
+	maxRate = 1e9
 
 	// maxDims bounds obs and act lengths. A longer vector could not fit a
 	// default-sized line anyway, and the bound keeps the expansion of a scalar
@@ -44,14 +67,14 @@ const (
 	maxDims = 1_000_000
 	// maxMaxLineBytes bounds source.max_line_bytes: readers size their line
 	// buffer from it, so an absurd value must fail here, not at run time.
-	maxMaxLineBytes = 1 << 30
+	maxMaxLineBytes = 64 << 20
 	// splitSumTolerance is how far train + val + test may be from 1, so that
 	// decimal fractions such as 0.7 + 0.2 + 0.1 are accepted.
 	splitSumTolerance = 1e-9
 )
 
 func defaultInclude() []string {
-	return []string{"**/*.jsonl", "**/*.jsonl.gz", "**/*.jsonl.zst"}
+	return []string{"**/*.jsonl", "**/*.jsonl.gz", "**/*.jsonl.zst", "**/*.mcap"}
 }
 
 // configKeys lists the keys allowed in each map of the config file;
@@ -59,9 +82,15 @@ func defaultInclude() []string {
 // key, and a test checks that the JSON Schema lists exactly these.
 func configKeys() map[string][]string {
 	return map[string][]string{
-		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet", "storage", "quarantine"},
-		"source":        {"uri", "include", "exclude", "max_line_bytes"},
-		"embodiments.*": {"obs", "act", "obs_low", "obs_high", "act_low", "act_high", "cameras", "goal_dims", "goal_tolerance"},
+		"":              {"dataset", "source", "work", "output", "partitions", "seed", "embodiments", "episodes", "goals", "splits", "split_by", "float", "parquet", "storage", "quarantine", "recordings", "gates"},
+		"source":        {"uri", "include", "exclude", "max_line_bytes", "image_roots", "max_image_bytes"},
+		"embodiments.*": {"obs", "act", "obs_low", "obs_high", "act_low", "act_high", "cameras", "goal_dims", "goal_tolerance", "frames"},
+		"recordings":    {"unit", "embodiment", "time"},
+		"recordings.*":  {"metadata", "key", "path"},
+		"frames":        {"rate", "clock", "max_age", "obs", "act", "cameras", "events", "task", "success"},
+		"frames.source": {"topic", "field", "align", "max_age"},
+		"frames.label":  {"topic", "field"},
+		"gates":         {"max_dropped", "max_dropped_by", "max_source_dropped", "max_skipped", "max_incomplete", "min_episodes", "min_frames", "max_drift", "baseline"},
 		"episodes":      {"max_gap", "min_steps", "max_steps"},
 		"goals":         {"future", "geometric", "final", "negative", "gamma", "horizon"},
 		"splits":        {"train", "val", "test"},
@@ -148,6 +177,10 @@ type configLoader struct {
 	file string
 	dir  string // absolute folder of the config file
 	errs []*ConfigError
+	// suggested holds the dotted keys that an unknown key was reported as a
+	// likely misspelling of, so that the same key is not also reported as
+	// missing: the typo is the problem to fix.
+	suggested map[string]bool
 }
 
 // cfgField is one key of a YAML map with its value.
@@ -257,6 +290,14 @@ func (l *configLoader) fields(key string, line int, n *yaml.Node, allowed []stri
 			known = known || a == f.name
 		}
 		if !known {
+			if near := nearestKey(f.name, allowed); near != "" {
+				if l.suggested == nil {
+					l.suggested = map[string]bool{}
+				}
+				l.suggested[joinConfigKey(key, near)] = true
+				l.fail(f.key, f.line, "unknown key; did you mean %s? (allowed: %s)", near, strings.Join(allowed, ", "))
+				continue
+			}
 			l.fail(f.key, f.line, "unknown key (allowed: %s)", strings.Join(allowed, ", "))
 			continue
 		}
@@ -377,9 +418,10 @@ func isConfigName(s string, max int, lowerOnly bool, extra string) bool {
 func (l *configLoader) config(doc *yaml.Node) *Config {
 	c := &Config{
 		Source: SourceConfig{
-			Include:      defaultInclude(),
-			Exclude:      []string{},
-			MaxLineBytes: defaultMaxLineBytes,
+			Include:       defaultInclude(),
+			Exclude:       []string{},
+			MaxLineBytes:  defaultMaxLineBytes,
+			MaxImageBytes: defaultMaxImageBytes,
 		},
 		Partitions:  defaultPartitions,
 		Embodiments: map[string]*Embodiment{},
@@ -406,20 +448,20 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 			}
 		}
 	} else {
-		l.fail("dataset", doc.Line, "required: the dataset name, 1-64 of a-z, 0-9 and -")
+		l.missing("dataset", doc.Line, "required: the dataset name, 1-64 of a-z, 0-9 and -")
 	}
 
 	if f, ok := fs["source"]; ok {
 		l.source(f, keys["source"], &c.Source)
 	} else {
-		l.fail("source", doc.Line, "required: a map with at least uri")
+		l.missing("source", doc.Line, "required: a map with at least uri")
 	}
 
 	c.Work = l.locationOr(fs, "work", defaultWork, doc.Line)
 	c.Output = l.locationOr(fs, "output", defaultOutput, doc.Line)
 
 	if f, ok := fs["partitions"]; ok {
-		v, _ := l.integer(f, 1, 100000)
+		v, _ := l.integer(f, 1, maxPartitions)
 		c.Partitions = int(v)
 	}
 	if f, ok := fs["seed"]; ok {
@@ -439,7 +481,7 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 			c.Embodiments[e.name] = l.embodiment(e, keys["embodiments.*"])
 		}
 	} else {
-		l.fail("embodiments", doc.Line, "required: a map of embodiment name to its settings (obs, goal_tolerance, ...)")
+		l.missing("embodiments", doc.Line, "required: a map of embodiment name to its settings (obs, goal_tolerance, ...)")
 	}
 
 	if f, ok := fs["episodes"]; ok {
@@ -463,12 +505,26 @@ func (l *configLoader) config(doc *yaml.Node) *Config {
 			c.Parquet.Compression, _ = l.oneOf(g, "zstd", "snappy", "gzip", "none")
 		}
 		if g, ok := pf["row_group_rows"]; ok {
-			v, _ := l.integer(g, 1, 10_000_000)
+			v, _ := l.integer(g, 1, maxRowGroupRows)
 			c.Parquet.RowGroupRows = int(v)
 		}
 	}
 	if f, ok := fs["storage"]; ok {
 		l.storage(f, keys["storage"], &c.Storage)
+	}
+	if f, ok := fs["recordings"]; ok {
+		c.Recordings = l.recordings(f, keys)
+	}
+	if c.Recordings == nil {
+		for _, e := range c.Embodiments {
+			if e.Frames != nil {
+				c.Recordings = defaultRecordings()
+				break
+			}
+		}
+	}
+	if f, ok := fs["gates"]; ok {
+		c.Gates = l.gates(f, keys["gates"])
 	}
 	if f, ok := fs["quarantine"]; ok {
 		if f.val.Kind != yaml.ScalarNode || f.val.ShortTag() != "!!bool" {
@@ -547,7 +603,7 @@ func (l *configLoader) source(f cfgField, allowed []string, s *SourceConfig) {
 	if g, ok := fs["uri"]; ok {
 		s.URI, _ = l.location(g)
 	} else {
-		l.fail("source.uri", f.line, "required: s3://bucket/prefix, file:///abs/dir or a plain path")
+		l.missing("source.uri", f.line, "required: s3://bucket/prefix, file:///abs/dir or a plain path")
 	}
 	if g, ok := fs["include"]; ok {
 		s.Include = l.globs(g)
@@ -561,6 +617,12 @@ func (l *configLoader) source(f cfgField, allowed []string, s *SourceConfig) {
 	if g, ok := fs["max_line_bytes"]; ok {
 		v, _ := l.integer(g, 1, maxMaxLineBytes)
 		s.MaxLineBytes = int(v)
+	}
+	if g, ok := fs["image_roots"]; ok {
+		s.ImageRoots = l.imageRoots(g)
+	}
+	if g, ok := fs["max_image_bytes"]; ok {
+		s.MaxImageBytes, _ = l.integer(g, 1, maxMaxImageBytes)
 	}
 }
 
@@ -709,7 +771,7 @@ func (l *configLoader) embodiment(f cfgField, allowed []string) *Embodiment {
 		v, obsOK = l.integer(g, 1, maxDims)
 		e.Obs = int(v)
 	} else {
-		l.fail(f.key+".obs", f.line, "required: the obs length, %s", intRangeText(1, maxDims))
+		l.missing(f.key+".obs", f.line, "required: the obs length, %s", intRangeText(1, maxDims))
 	}
 	actOK := true
 	if g, ok := fs["act"]; ok {
@@ -726,6 +788,9 @@ func (l *configLoader) embodiment(f cfgField, allowed []string) *Embodiment {
 
 	if g, ok := fs["cameras"]; ok {
 		e.Cameras = l.cameras(g)
+	}
+	if g, ok := fs["frames"]; ok {
+		e.Frames = l.frames(g, e, actOK)
 	}
 
 	if g, ok := fs["goal_dims"]; ok {
@@ -745,7 +810,7 @@ func (l *configLoader) embodiment(f cfgField, allowed []string) *Embodiment {
 			e.GoalTolerance = v
 		}
 	} else {
-		l.fail(f.key+".goal_tolerance", f.line, "required: the largest L2 distance to the goal that counts as reached, a finite number >= 0")
+		l.missing(f.key+".goal_tolerance", f.line, "required: the largest L2 distance to the goal that counts as reached, a finite number >= 0")
 	}
 	return e
 }
@@ -895,12 +960,12 @@ func (l *configLoader) episodes(f cfgField, allowed []string, ep *EpisodeConfig)
 	minOK, maxOK := true, true
 	if g, ok := fs["min_steps"]; ok {
 		var v int64
-		v, minOK = l.integer(g, 2, math.MaxInt32)
+		v, minOK = l.integer(g, 2, maxEpisodeSteps)
 		ep.MinSteps = int(v)
 	}
 	if g, ok := fs["max_steps"]; ok {
 		var v int64
-		v, maxOK = l.integer(g, 2, math.MaxInt32)
+		v, maxOK = l.integer(g, 2, maxEpisodeSteps)
 		ep.MaxSteps = int(v)
 	}
 	if minOK && maxOK && ep.MaxSteps < ep.MinSteps {
@@ -924,7 +989,11 @@ func (l *configLoader) goals(f cfgField, allowed []string, g *GoalConfig) {
 	}{{"future", &g.Future}, {"geometric", &g.Geometric}, {"final", &g.Final}, {"negative", &g.Negative}, {"horizon", &g.Horizon}}
 	for _, c := range counts {
 		if h, ok := fs[c.name]; ok {
-			v, _ := l.integer(h, 0, math.MaxInt32)
+			max := int64(maxGoalsPerStrategy)
+			if c.name == "horizon" {
+				max = maxEpisodeSteps
+			}
+			v, _ := l.integer(h, 0, max)
 			*c.dst = int(v)
 		}
 	}
@@ -1010,12 +1079,16 @@ func (c *Config) CanonicalJSON() []byte {
 // HashJSON returns the canonical JSON without the storage locations
 // (source.uri, work, output, and a storage connection section), so that
 // moving the logs, the work area or the output does not change
-// config_sha256 (SPEC §5).
+// config_sha256 (SPEC §5). The gates are left out too: like the connection
+// settings they decide whether a version is committed, never a byte of it,
+// and the pack stage's key and the shards' footers carry config_sha256, so a
+// changed gate must not re-run any stage.
 func (c *Config) HashJSON() []byte {
 	m := c.genericJSON()
 	delete(m, "work")
 	delete(m, "output")
 	delete(m, "storage")
+	delete(m, "gates")
 	if src, ok := m["source"].(map[string]any); ok {
 		delete(src, "uri")
 	}
@@ -1026,4 +1099,469 @@ func (c *Config) HashJSON() []byte {
 func (c *Config) SHA256() string {
 	sum := sha256.Sum256(c.HashJSON())
 	return hex.EncodeToString(sum[:])
+}
+
+// missing reports a required key that is absent, unless an unknown key was
+// already reported as its likely misspelling.
+func (l *configLoader) missing(key string, line int, format string, args ...any) {
+	if l.suggested[key] {
+		return
+	}
+	l.fail(key, line, format, args...)
+}
+
+// nearestKey returns the allowed key nearest to name by edit distance, when
+// it is near enough to be a typo (at most a third of the longer name, and at
+// most 3 edits), else "".
+func nearestKey(name string, allowed []string) string {
+	best, bestD := "", 4
+	for _, a := range allowed {
+		d := editDistance(name, a)
+		limit := max(len(name), len(a)) / 3
+		if d <= limit && d < bestD {
+			best, bestD = a, d
+		}
+	}
+	return best
+}
+
+// editDistance is the Levenshtein distance between a and b, in bytes (keys
+// are ASCII).
+func editDistance(a, b string) int {
+	prev := make([]int, len(b)+1)
+	cur := make([]int, len(b)+1)
+	for j := range prev {
+		prev[j] = j
+	}
+	for i := 1; i <= len(a); i++ {
+		cur[0] = i
+		for j := 1; j <= len(b); j++ {
+			cost := 1
+			if a[i-1] == b[j-1] {
+				cost = 0
+			}
+			cur[j] = min(prev[j]+1, cur[j-1]+1, prev[j-1]+cost)
+		}
+		prev, cur = cur, prev
+	}
+	return prev[len(b)]
+}
+
+// defaultRecordings is SPEC §7.1's example, used when an embodiment has
+// frames but the config has no recordings section, and for the rules a
+// recordings section leaves out.
+func defaultRecordings() *RecordingsConfig {
+	return &RecordingsConfig{
+		Unit:       IdentityRule{Metadata: "robot", Key: "unit"},
+		Embodiment: IdentityRule{Metadata: "robot", Key: "model"},
+		Time:       "log_time",
+	}
+}
+
+// recordings reads SPEC §7.1's recordings section.
+func (l *configLoader) recordings(f cfgField, keys map[string][]string) *RecordingsConfig {
+	r := defaultRecordings()
+	fs := l.fields(f.key, f.line, f.val, keys["recordings"])
+	if fs == nil {
+		return r
+	}
+	if g, ok := fs["unit"]; ok {
+		r.Unit = l.identityRule(g, keys["recordings.*"])
+	}
+	if g, ok := fs["embodiment"]; ok {
+		r.Embodiment = l.identityRule(g, keys["recordings.*"])
+	}
+	if g, ok := fs["time"]; ok {
+		r.Time, _ = l.oneOf(g, "log_time", "publish_time")
+	}
+	return r
+}
+
+// identityRule reads {metadata, key} or {path}: exactly one form.
+func (l *configLoader) identityRule(f cfgField, allowed []string) IdentityRule {
+	var r IdentityRule
+	fs := l.fields(f.key, f.line, f.val, allowed)
+	if fs == nil {
+		return r
+	}
+	_, hasMeta := fs["metadata"]
+	_, hasKey := fs["key"]
+	p, hasPath := fs["path"]
+	switch {
+	case hasPath && (hasMeta || hasKey):
+		l.fail(f.key, f.line, "must be either {metadata, key} or {path}, not both")
+		return r
+	case hasPath:
+		s, ok := l.str(p, "an RE2 regular expression with a capture group")
+		if !ok {
+			return r
+		}
+		re, err := regexp.Compile(s)
+		switch {
+		case err != nil:
+			l.fail(p.key, p.line, "not a valid RE2 regular expression: %v", err)
+		case re.NumSubexp() < 1:
+			l.fail(p.key, p.line, "must have a capture group (its first group is the value), got %q", s)
+		default:
+			r.Path = s
+		}
+	case hasMeta && hasKey:
+		r.Metadata = l.nonEmpty(fs["metadata"], "a Metadata record name")
+		r.Key = l.nonEmpty(fs["key"], "a key of that Metadata record")
+	case hasMeta:
+		l.fail(f.key+".key", f.line, "required with metadata: the key of the Metadata record")
+	case hasKey:
+		l.fail(f.key+".metadata", f.line, "required with key: the name of the Metadata record")
+	default:
+		l.fail(f.key, f.line, "must be {metadata, key} or {path}")
+	}
+	return r
+}
+
+// nonEmpty reads a non-empty string.
+func (l *configLoader) nonEmpty(f cfgField, want string) string {
+	s, ok := l.str(f, want)
+	if ok && s == "" {
+		l.fail(f.key, f.line, "must be %s, got an empty string", want)
+	}
+	return s
+}
+
+// duration reads a Go duration > 0.
+func (l *configLoader) duration(f cfgField) (Duration, bool) {
+	const want = "a Go duration > 0 such as 150ms or 2s"
+	s, ok := l.str(f, want)
+	if !ok {
+		return 0, false
+	}
+	d, err := time.ParseDuration(s)
+	if err != nil || d <= 0 {
+		l.fail(f.key, f.line, "must be %s, got %s", want, describeNode(f.val))
+		return 0, false
+	}
+	return Duration(d), true
+}
+
+// frames reads an embodiment's frames section (SPEC §7.3). Every camera the
+// embodiment declares must have a source: SPEC §2 requires each declared
+// camera on every frame, so a camera without one would drop every tick.
+func (l *configLoader) frames(f cfgField, e *Embodiment, actOK bool) *FramesConfig {
+	keys := configKeys()
+	fr := &FramesConfig{}
+	fs := l.fields(f.key, f.line, f.val, keys["frames"])
+	if fs == nil {
+		return fr
+	}
+	rate, hasRate := fs["rate"]
+	clock, hasClock := fs["clock"]
+	switch {
+	case hasRate && hasClock:
+		l.fail(clock.key, clock.line, "give either rate or clock, not both")
+	case hasRate:
+		if v, ok := l.number(rate, "a number > 0 (ticks per second)"); ok {
+			if v <= 0 || v > maxRate {
+				l.fail(rate.key, rate.line, "must be a number > 0 and <= 1e9 (ticks per second), got %s", describeNode(rate.val))
+			} else {
+				fr.Rate = v
+			}
+		}
+	case hasClock:
+		fr.Clock = l.nonEmpty(clock, "a topic name")
+	default:
+		l.fail(f.key+".rate", f.line, "required: rate (ticks per second) or clock (a topic)")
+	}
+	if g, ok := fs["max_age"]; ok {
+		fr.MaxAge, _ = l.duration(g)
+	} else {
+		l.missing(f.key+".max_age", f.line, "required: the oldest value a tick may take, a Go duration > 0 such as 150ms")
+	}
+	if g, ok := fs["obs"]; ok {
+		fr.Obs = l.frameSources(g, keys["frames.source"], fr.MaxAge, true)
+		if fr.Obs != nil && len(fr.Obs) == 0 {
+			l.fail(g.key, g.line, "must list at least one source")
+		}
+	} else {
+		l.missing(f.key+".obs", f.line, "required: the list of obs sources {topic, field}")
+	}
+	if g, ok := fs["act"]; ok {
+		if actOK && e.Act == 0 {
+			l.fail(g.key, g.line, "the embodiment has act 0 (observation only), so it takes no act sources")
+		} else {
+			fr.Act = l.frameSources(g, keys["frames.source"], fr.MaxAge, true)
+		}
+	}
+	declared := make(map[string]bool, len(e.Cameras))
+	for _, c := range e.Cameras {
+		declared[c] = true
+	}
+	if g, ok := fs["cameras"]; ok {
+		list, ok := l.entries(g.key, g.line, g.val, "a map of camera name to its source {topic, field}")
+		if ok {
+			fr.Cameras = make(map[string]FieldSource, len(list))
+			for _, c := range list {
+				if !declared[c.name] {
+					l.fail(c.key, c.line, "camera %q is not declared in the embodiment's cameras %v", c.name, e.Cameras)
+					continue
+				}
+				if src, ok := l.frameSource(c, keys["frames.source"], fr.MaxAge, false); ok {
+					fr.Cameras[c.name] = src
+				}
+			}
+		}
+	}
+	for _, c := range e.Cameras {
+		if _, ok := fr.Cameras[c]; !ok {
+			if g, given := fs["cameras"]; given {
+				l.fail(g.key, g.line, "declared camera %q has no source (every declared camera must be on every frame)", c)
+			} else {
+				l.fail(f.key+".cameras", f.line, "required: a source for each declared camera, missing %q", c)
+			}
+			break
+		}
+	}
+	for _, name := range []string{"events", "task", "success"} {
+		g, ok := fs[name]
+		if !ok {
+			continue
+		}
+		ref := l.fieldRef(g, keys["frames.label"])
+		switch name {
+		case "events":
+			fr.Events = ref
+		case "task":
+			fr.Task = ref
+		case "success":
+			fr.Success = ref
+		}
+	}
+	return fr
+}
+
+// frameSources reads a list of obs or act sources.
+func (l *configLoader) frameSources(f cfgField, allowed []string, maxAge Duration, linearOK bool) []FieldSource {
+	if f.val.Kind != yaml.SequenceNode {
+		l.fail(f.key, f.line, "must be a list of sources {topic, field}, got %s", describeNode(f.val))
+		return nil
+	}
+	if len(f.val.Content) > maxFrameSources {
+		l.fail(f.key, f.line, "must list at most %d sources, got %d", maxFrameSources, len(f.val.Content))
+		return nil
+	}
+	out := make([]FieldSource, 0, len(f.val.Content))
+	for i, n := range f.val.Content {
+		n = derefNode(n)
+		g := cfgField{name: strconv.Itoa(i), key: fmt.Sprintf("%s[%d]", f.key, i), line: n.Line, val: n}
+		if src, ok := l.frameSource(g, allowed, maxAge, linearOK); ok {
+			out = append(out, src)
+		}
+	}
+	return out
+}
+
+// frameSource reads one {topic, field, align, max_age}; align defaults to
+// hold and max_age to the section's.
+func (l *configLoader) frameSource(f cfgField, allowed []string, maxAge Duration, linearOK bool) (FieldSource, bool) {
+	src := FieldSource{Align: AlignHold, MaxAge: maxAge}
+	fs := l.fields(f.key, f.line, f.val, allowed)
+	if fs == nil {
+		return src, false
+	}
+	ok := l.topicField(f, fs, &src.Topic, &src.Field)
+	if g, given := fs["align"]; given {
+		if linearOK {
+			src.Align, _ = l.oneOf(g, AlignHold, AlignNext, AlignNearest, AlignLinear)
+		} else if v, isStr := l.str(g, "hold, next or nearest"); isStr && v == AlignLinear {
+			l.fail(g.key, g.line, "linear interpolates numbers, so it cannot align a camera; use hold, next or nearest")
+		} else if isStr {
+			src.Align, _ = l.oneOf(g, AlignHold, AlignNext, AlignNearest)
+		}
+	}
+	if g, given := fs["max_age"]; given {
+		src.MaxAge, _ = l.duration(g)
+	}
+	return src, ok
+}
+
+// fieldRef reads a label source {topic, field}.
+func (l *configLoader) fieldRef(f cfgField, allowed []string) *FieldRef {
+	ref := &FieldRef{}
+	fs := l.fields(f.key, f.line, f.val, allowed)
+	if fs == nil {
+		return ref
+	}
+	l.topicField(f, fs, &ref.Topic, &ref.Field)
+	return ref
+}
+
+// topicField reads the required topic and field keys; the field path is
+// parsed here so that a bad one fails at load, naming its key.
+func (l *configLoader) topicField(f cfgField, fs map[string]cfgField, topic, field *string) bool {
+	ok := true
+	if g, given := fs["topic"]; given {
+		*topic = l.nonEmpty(g, "a topic name")
+	} else {
+		l.missing(f.key+".topic", f.line, "required: the topic name")
+		ok = false
+	}
+	if g, given := fs["field"]; given {
+		if s, isStr := l.str(g, "a field path such as position or pose.position[0:3]"); isStr {
+			if _, err := ParseFieldPath(s); err != nil {
+				l.fail(g.key, g.line, "%v", err)
+				ok = false
+			}
+			*field = s
+		}
+	} else {
+		l.missing(f.key+".field", f.line, "required: the field path")
+		ok = false
+	}
+	return ok
+}
+
+// imageRoots reads source.image_roots: s3:// or file:/// prefixes, resolved
+// with a trailing slash. A plain path is refused: image references come from
+// the field, so the places they may name must be spelled out absolutely.
+func (l *configLoader) imageRoots(f cfgField) []string {
+	list, lines, ok := l.strList(f, "s3://bucket/prefix or file:///abs/dir prefixes")
+	if !ok {
+		return nil
+	}
+	out := make([]string, 0, len(list))
+	for i, s := range list {
+		scheme, rest, isURI := strings.Cut(s, "://")
+		if !isURI || (strings.ToLower(scheme) != "s3" && strings.ToLower(scheme) != "file") {
+			l.fail(f.key, lines[i], "must be an s3://bucket/prefix or file:///abs/dir prefix, got %q", s)
+			continue
+		}
+		for _, seg := range strings.Split(rest, "/") {
+			if seg == ".." || seg == "." {
+				l.fail(f.key, lines[i], "must not hold . or .. segments, got %q", s)
+				ok = false
+				break
+			}
+		}
+		if !ok {
+			ok = true
+			continue
+		}
+		r, err := resolveLocation(s, l.dir)
+		if err != nil {
+			l.fail(f.key, lines[i], "%v", err)
+			continue
+		}
+		out = append(out, r)
+	}
+	return out
+}
+
+// gates reads the quality gates checked before commit.
+func (l *configLoader) gates(f cfgField, allowed []string) *GatesConfig {
+	g := &GatesConfig{}
+	fs := l.fields(f.key, f.line, f.val, allowed)
+	if fs == nil {
+		return g
+	}
+	share := func(name string) *float64 {
+		h, ok := fs[name]
+		if !ok {
+			return nil
+		}
+		v, ok := l.shareValue(h)
+		if !ok {
+			return nil
+		}
+		return &v
+	}
+	g.MaxDropped = share("max_dropped")
+	g.MaxSourceDropped = share("max_source_dropped")
+	if h, ok := fs["max_dropped_by"]; ok {
+		known := append(Reasons(), Stale)
+		list, ok := l.entries(h.key, h.line, h.val, "a map of drop reason to a share from 0 to 1")
+		if ok {
+			g.MaxDroppedBy = make(map[string]float64, len(list))
+			for _, e := range list {
+				if !slices.Contains(known, e.name) {
+					if near := nearestKey(e.name, known); near != "" {
+						l.fail(e.key, e.line, "unknown drop reason; did you mean %s? (known: %s)", near, strings.Join(known, ", "))
+					} else {
+						l.fail(e.key, e.line, "unknown drop reason (known: %s)", strings.Join(known, ", "))
+					}
+					continue
+				}
+				if v, ok := l.shareValue(e); ok {
+					g.MaxDroppedBy[e.name] = v
+				}
+			}
+		}
+	}
+	count := func(name string) *int {
+		h, ok := fs[name]
+		if !ok {
+			return nil
+		}
+		v, ok := l.integer(h, 0, math.MaxInt32)
+		if !ok {
+			return nil
+		}
+		n := int(v)
+		return &n
+	}
+	g.MaxSkipped = count("max_skipped")
+	g.MaxIncomplete = count("max_incomplete")
+	g.MinEpisodes = l.perSplit(fs, "min_episodes")
+	g.MinFrames = l.perSplit(fs, "min_frames")
+	if h, ok := fs["max_drift"]; ok {
+		if v, ok := l.number(h, "a number > 0 (standard deviations)"); ok {
+			if v <= 0 {
+				l.fail(h.key, h.line, "must be a number > 0 (standard deviations), got %s", describeNode(h.val))
+			} else {
+				g.MaxDrift = &v
+			}
+		}
+	}
+	if h, ok := fs["baseline"]; ok {
+		if s, ok := l.str(h, "a version name"); ok {
+			if err := ValidVersion(s); err != nil {
+				l.fail(h.key, h.line, "%v", err)
+			} else {
+				g.Baseline = s
+			}
+		}
+	}
+	return g
+}
+
+// shareValue reads a number from 0 to 1.
+func (l *configLoader) shareValue(f cfgField) (float64, bool) {
+	const want = "a share from 0 to 1"
+	v, ok := l.number(f, want)
+	if ok && (v < 0 || v > 1) {
+		l.fail(f.key, f.line, "must be %s, got %s", want, describeNode(f.val))
+		return 0, false
+	}
+	return v, ok
+}
+
+// perSplit reads a map of split name (train, val, test) to a count >= 0.
+func (l *configLoader) perSplit(fs map[string]cfgField, name string) map[string]int64 {
+	h, ok := fs[name]
+	if !ok {
+		return nil
+	}
+	splits := []string{"train", "val", "test"}
+	list, ok := l.entries(h.key, h.line, h.val, "a map of split (train, val, test) to a count")
+	if !ok {
+		return nil
+	}
+	out := make(map[string]int64, len(list))
+	for _, e := range list {
+		if !slices.Contains(splits, e.name) {
+			l.fail(e.key, e.line, "unknown split (known: train, val, test)")
+			continue
+		}
+		if v, ok := l.integer(e, 0, math.MaxInt64); ok {
+			out[e.name] = v
+		}
+	}
+	return out
 }

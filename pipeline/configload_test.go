@@ -161,6 +161,8 @@ func TestAislePickersConfig(t *testing.T) {
 			Include:      []string{"**/*.jsonl", "**/*.jsonl.gz", "**/*.jsonl.zst"},
 			Exclude:      []string{"units/picker6-0113/**"},
 			MaxLineBytes: 1048576,
+			// SPEC §1's default.
+			MaxImageBytes: 16777216,
 		},
 		Work:        "file://" + repo + "/.hindcast/work/",
 		Output:      "s3://larkspur-datasets/",
@@ -221,10 +223,13 @@ func TestMinimalConfigDefaults(t *testing.T) {
 	want := &Config{
 		Dataset: "demo",
 		Source: SourceConfig{
-			URI:          "file://" + d + "/logs/",
-			Include:      []string{"**/*.jsonl", "**/*.jsonl.gz", "**/*.jsonl.zst"},
+			URI: "file://" + d + "/logs/",
+			// SPEC §2's default include, recordings (§7) among them.
+			Include:      []string{"**/*.jsonl", "**/*.jsonl.gz", "**/*.jsonl.zst", "**/*.mcap"},
 			Exclude:      []string{},
 			MaxLineBytes: 1048576,
+			// SPEC §1's default.
+			MaxImageBytes: 16777216,
 		},
 		Work:       "file://" + d + "/.hindcast/work/",
 		Output:     "file://" + d + "/datasets/",
@@ -261,9 +266,9 @@ goals: {future: 0, geometric: 0, final: 0, negative: 0, gamma: 0.5, horizon: 25}
 splits: {train: 1}
 split_by: unit
 float: float64
-parquet: {compression: none, row_group_rows: 10000000}
+parquet: {compression: none, row_group_rows: 1048576}
 seed: -9223372036854775808
-partitions: 100000
+partitions: 4096
 `
 	c, err := ParseConfig([]byte(src), t.TempDir(), "fleet.yaml")
 	if err != nil {
@@ -300,10 +305,10 @@ partitions: 100000
 	if want := (SplitConfig{Train: 1}); c.Splits != want {
 		t.Errorf("splits = %+v, want %+v", c.Splits, want)
 	}
-	if c.SplitBy != "unit" || c.Float != "float64" || c.Parquet != (ParquetConfig{Compression: "none", RowGroupRows: 10000000}) {
+	if c.SplitBy != "unit" || c.Float != "float64" || c.Parquet != (ParquetConfig{Compression: "none", RowGroupRows: 1048576}) {
 		t.Errorf("split_by, float, parquet = %q, %q, %+v", c.SplitBy, c.Float, c.Parquet)
 	}
-	if c.Seed != -9223372036854775808 || c.Partitions != 100000 {
+	if c.Seed != -9223372036854775808 || c.Partitions != 4096 {
 		t.Errorf("seed, partitions = %d, %d", c.Seed, c.Partitions)
 	}
 	// The duration is written back in Go's own form.
@@ -327,8 +332,8 @@ const (
 )
 
 func TestBadConfigs(t *testing.T) {
-	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet, storage, quarantine"
-	const embKeys = "obs, act, obs_low, obs_high, act_low, act_high, cameras, goal_dims, goal_tolerance"
+	const topKeys = "dataset, source, work, output, partitions, seed, embodiments, episodes, goals, splits, split_by, float, parquet, storage, quarantine, recordings, gates"
+	const embKeys = "obs, act, obs_low, obs_high, act_low, act_high, cameras, goal_dims, goal_tolerance, frames"
 	const locations = "s3://bucket/prefix, file:///abs/dir or a plain path"
 	const obsBound = "must be a finite number or a list of 10 finite numbers (one per obs dim)"
 	const dims = "obs indices must be integers from 0 to 9 (obs is 10)"
@@ -347,21 +352,21 @@ func TestBadConfigs(t *testing.T) {
 		{"storage path_style not a bool", baseConfig + "storage:\n  path_style: yes please\n",
 			"storage.path_style", 11, "must be true or false, got \"yes please\"", schemaRejects},
 		{"unknown key in embodiment", editBase(t, "    act: 7\n", "    act: 7\n    obs_lo: -1\n"),
-			"embodiments.picker6.obs_lo", 8, "unknown key (allowed: " + embKeys + ")", schemaRejects},
+			"embodiments.picker6.obs_lo", 8, "unknown key; did you mean obs_low? (allowed: " + embKeys + ")", schemaRejects},
 		{"unknown key in source", editBase(t, "  uri: logs\n", "  uri: logs\n  inclde: [\"*.jsonl\"]\n"),
-			"source.inclde", 4, "unknown key (allowed: uri, include, exclude, max_line_bytes)", schemaRejects},
+			"source.inclde", 4, "unknown key; did you mean include? (allowed: uri, include, exclude, max_line_bytes, image_roots, max_image_bytes)", schemaRejects},
 		{"unknown key in goals", baseConfig + "goals:\n  futur: 3\n",
-			"goals.futur", 11, "unknown key (allowed: future, geometric, final, negative, gamma, horizon)", schemaRejects},
+			"goals.futur", 11, "unknown key; did you mean future? (allowed: future, geometric, final, negative, gamma, horizon)", schemaRejects},
 		{"float where an int is", baseConfig + "partitions: 2.5\n",
-			"partitions", 10, "must be an integer from 1 to 100000, got 2.5", schemaRejects},
+			"partitions", 10, "must be an integer from 1 to 4096, got 2.5", schemaRejects},
 		{"string where an int is", baseConfig + "partitions: \"2\"\n",
-			"partitions", 10, `must be an integer from 1 to 100000, got "2"`, schemaRejects},
+			"partitions", 10, `must be an integer from 1 to 4096, got "2"`, schemaRejects},
 		{"list where an int is", baseConfig + "partitions: [2]\n",
-			"partitions", 10, "must be an integer from 1 to 100000, got a list", schemaRejects},
+			"partitions", 10, "must be an integer from 1 to 4096, got a list", schemaRejects},
 		{"partitions below 1", baseConfig + "partitions: 0\n",
-			"partitions", 10, "must be an integer from 1 to 100000, got 0", schemaRejects},
-		{"partitions above 100000", baseConfig + "partitions: 100001\n",
-			"partitions", 10, "must be an integer from 1 to 100000, got 100001", schemaRejects},
+			"partitions", 10, "must be an integer from 1 to 4096, got 0", schemaRejects},
+		{"partitions above 4096", baseConfig + "partitions: 4097\n",
+			"partitions", 10, "must be an integer from 1 to 4096, got 4097", schemaRejects},
 		{"seed beyond int64", baseConfig + "seed: 9223372036854775808\n",
 			"seed", 10, "must be a 64-bit integer, got 9223372036854775808", schemaRejects},
 		{"int written as a float", editBase(t, "    act: 7\n", "    act: 7.0\n"),
@@ -373,7 +378,7 @@ func TestBadConfigs(t *testing.T) {
 		{"gamma 1", baseConfig + "goals:\n  gamma: 1\n",
 			"goals.gamma", 11, "must be > 0 and < 1, got 1", schemaRejects},
 		{"negative goal count", baseConfig + "goals:\n  negative: -1\n",
-			"goals.negative", 11, "must be an integer from 0 to 2147483647, got -1", schemaRejects},
+			"goals.negative", 11, "must be an integer from 0 to 1024, got -1", schemaRejects},
 		{"duplicate key", baseConfig + "seed: 1\nseed: 2\n",
 			"seed", 11, "duplicate key (first at line 10)", notJSON},
 		{"duplicate embodiment", baseConfig + "  picker6:\n    obs: 3\n    goal_tolerance: 1\n",
@@ -385,7 +390,7 @@ func TestBadConfigs(t *testing.T) {
 		{"compression enum", baseConfig + "parquet:\n  compression: lz4\n",
 			"parquet.compression", 11, `must be zstd, snappy, gzip or none, got "lz4"`, schemaRejects},
 		{"row_group_rows 0", baseConfig + "parquet:\n  row_group_rows: 0\n",
-			"parquet.row_group_rows", 11, "must be an integer from 1 to 10000000, got 0", schemaRejects},
+			"parquet.row_group_rows", 11, "must be an integer from 1 to 1048576, got 0", schemaRejects},
 		{"dataset missing", editBase(t, "dataset: demo\n", ""),
 			"dataset", 1, "required: the dataset name, 1-64 of a-z, 0-9 and -", schemaRejects},
 		{"dataset pattern", editBase(t, "dataset: demo", "dataset: Aisle_Pickers"),
@@ -445,7 +450,7 @@ func TestBadConfigs(t *testing.T) {
 		{"max_gap zero", baseConfig + "episodes:\n  max_gap: 0s\n",
 			"episodes.max_gap", 11, `must be a Go duration > 0 such as 500ms or 2s, got "0s"`, schemaRejects},
 		{"min_steps 1", baseConfig + "episodes:\n  min_steps: 1\n",
-			"episodes.min_steps", 11, "must be an integer from 2 to 2147483647, got 1", schemaRejects},
+			"episodes.min_steps", 11, "must be an integer from 2 to 1000000, got 1", schemaRejects},
 		{"max_steps below min_steps", baseConfig + "episodes:\n  min_steps: 20\n  max_steps: 15\n",
 			"episodes.max_steps", 12, "must be >= episodes.min_steps (20), got 15", schemaAccepts},
 		{"min_steps above default max_steps", baseConfig + "episodes:\n  min_steps: 600\n",
@@ -489,7 +494,7 @@ func TestBadConfigs(t *testing.T) {
 		{"uri missing", editBase(t, "  uri: logs\n", "  max_line_bytes: 4096\n"),
 			"source.uri", 2, "required: " + locations, schemaRejects},
 		{"max_line_bytes 0", editBase(t, "  uri: logs\n", "  uri: logs\n  max_line_bytes: 0\n"),
-			"source.max_line_bytes", 4, "must be an integer from 1 to 1073741824, got 0", schemaRejects},
+			"source.max_line_bytes", 4, "must be an integer from 1 to 67108864, got 0", schemaRejects},
 		{"work an empty string", baseConfig + "work: \"\"\n",
 			"work", 10, "must be " + locations + ", got an empty string", schemaRejects},
 		{"merge key", baseConfig + "  cart2:\n    obs: 5\n    <<: {act: 2}\n    goal_tolerance: 1\n",
@@ -630,7 +635,7 @@ func TestCanonicalJSON(t *testing.T) {
 		`"episodes":{"max_gap":"500ms","max_steps":500,"min_steps":10},"float":"float32",` +
 		`"goals":{"final":1,"future":2,"gamma":0.99,"geometric":1,"horizon":0,"negative":0},` +
 		`"output":"file:///etc/hindcast/datasets/","parquet":{"compression":"zstd","row_group_rows":65536},"partitions":8,"seed":0,` +
-		`"source":{"exclude":[],"include":["**/*.jsonl","**/*.jsonl.gz","**/*.jsonl.zst"],"max_line_bytes":1048576,"uri":"file:///etc/hindcast/logs/"},` +
+		`"source":{"exclude":[],"include":["**/*.jsonl","**/*.jsonl.gz","**/*.jsonl.zst","**/*.mcap"],"max_image_bytes":16777216,"max_line_bytes":1048576,"uri":"file:///etc/hindcast/logs/"},` +
 		`"split_by":"episode","splits":{"test":0.1,"train":0.8,"val":0.1},` +
 		`"storage":{"attempts":6,"max_concurrency":8,"part_size":16777216,"timeout":"1m0s"},"work":"file:///etc/hindcast/.hindcast/work/"}`
 	if got := string(c.CanonicalJSON()); got != want {
@@ -640,7 +645,7 @@ func TestCanonicalJSON(t *testing.T) {
 		`"episodes":{"max_gap":"500ms","max_steps":500,"min_steps":10},"float":"float32",` +
 		`"goals":{"final":1,"future":2,"gamma":0.99,"geometric":1,"horizon":0,"negative":0},` +
 		`"parquet":{"compression":"zstd","row_group_rows":65536},"partitions":8,"seed":0,` +
-		`"source":{"exclude":[],"include":["**/*.jsonl","**/*.jsonl.gz","**/*.jsonl.zst"],"max_line_bytes":1048576},` +
+		`"source":{"exclude":[],"include":["**/*.jsonl","**/*.jsonl.gz","**/*.jsonl.zst","**/*.mcap"],"max_image_bytes":16777216,"max_line_bytes":1048576},` +
 		`"split_by":"episode","splits":{"test":0.1,"train":0.8,"val":0.1}}`
 	if got := string(c.HashJSON()); got != wantHash {
 		t.Errorf("HashJSON() =\n%s\nwant\n%s", got, wantHash)
@@ -773,15 +778,32 @@ func TestSchemaMatchesLoader(t *testing.T) {
 		return obj.(map[string]any)["properties"].(map[string]any)
 	}
 	top := props(s)
+	defs := s["$defs"].(map[string]any)
+	// identityKeys unites the keys of the rule's two forms.
+	identityKeys := func(rule any) map[string]any {
+		out := map[string]any{}
+		for _, form := range rule.(map[string]any)["oneOf"].([]any) {
+			for k, v := range props(form) {
+				out[k] = v
+			}
+		}
+		return out
+	}
 	sections := map[string]map[string]any{
 		"":              top,
 		"source":        props(top["source"]),
-		"embodiments.*": props(s["$defs"].(map[string]any)["embodiment"]),
+		"embodiments.*": props(defs["embodiment"]),
 		"episodes":      props(top["episodes"]),
 		"goals":         props(top["goals"]),
 		"splits":        props(top["splits"]),
 		"parquet":       props(top["parquet"]),
 		"storage":       props(top["storage"]),
+		"recordings":    props(top["recordings"]),
+		"recordings.*":  identityKeys(defs["identityRule"]),
+		"frames":        props(defs["frames"]),
+		"frames.source": props(defs["frameSource"]),
+		"frames.label":  props(defs["frameRef"]),
+		"gates":         props(top["gates"]),
 	}
 	keys := configKeys()
 	if len(keys) != len(sections) {
@@ -806,6 +828,16 @@ func TestSchemaMatchesLoader(t *testing.T) {
 	}
 	var resolved map[string]any
 	if err := json.Unmarshal(c.CanonicalJSON(), &resolved); err != nil {
+		t.Fatal(err)
+	}
+	// A config with frames and no recordings section gets SPEC §7.1's
+	// recordings; its source gets align's default.
+	fc, err := ParseConfig([]byte(baseConfig+"    frames:\n      rate: 10\n      max_age: 150ms\n      obs: [{topic: /arm/joints, field: position}]\n"), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var withFrames map[string]any
+	if err := json.Unmarshal(fc.CanonicalJSON(), &withFrames); err != nil {
 		t.Fatal(err)
 	}
 	checked := 0
@@ -835,6 +867,17 @@ func TestSchemaMatchesLoader(t *testing.T) {
 				} else {
 					got = resolved["embodiments"].(map[string]any)["picker6"].(map[string]any)[k]
 				}
+			case sec == "source" && k == "image_roots":
+				// Omitted from the JSON form when empty.
+				got = resolved[sec].(map[string]any)[k]
+				if got == nil {
+					got = []any{}
+				}
+			case sec == "recordings":
+				got = withFrames["recordings"].(map[string]any)[k]
+			case sec == "frames.source":
+				emb := withFrames["embodiments"].(map[string]any)["picker6"].(map[string]any)
+				got = emb["frames"].(map[string]any)["obs"].([]any)[0].(map[string]any)[k]
 			default:
 				got = resolved[sec].(map[string]any)[k]
 			}
@@ -843,10 +886,12 @@ func TestSchemaMatchesLoader(t *testing.T) {
 			}
 		}
 	}
-	// 23 defaults of SPEC §2's keys, 4 of the storage section
-	// (max_concurrency, part_size, attempts, timeout) and quarantine.
-	if checked != 28 {
-		t.Errorf("checked %d schema defaults, want 28", checked)
+	// 25 defaults of SPEC §2's keys (image_roots and max_image_bytes among
+	// them), 4 of the storage section (max_concurrency, part_size, attempts,
+	// timeout), quarantine, 3 of recordings (unit, embodiment, time) and a
+	// frames source's align.
+	if checked != 34 {
+		t.Errorf("checked %d schema defaults, want 34", checked)
 	}
 }
 

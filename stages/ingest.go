@@ -37,6 +37,8 @@ type ingestEmbodiment struct {
 	ActLow  []float64 `json:"act_low"`
 	ActHigh []float64 `json:"act_high"`
 	Cameras []string  `json:"cameras"`
+	// Frames decides how a recording's topics become frames (SPEC §7.3).
+	Frames *pipeline.FramesConfig `json:"frames,omitempty"`
 }
 
 // Reads implements pipeline.Stage: what decides which lines are kept, how
@@ -44,14 +46,17 @@ type ingestEmbodiment struct {
 func (Ingest) Reads(cfg *pipeline.Config) any {
 	embs := map[string]ingestEmbodiment{}
 	for name, e := range cfg.Embodiments {
-		embs[name] = ingestEmbodiment{e.Obs, e.Act, e.ObsLow, e.ObsHigh, e.ActLow, e.ActHigh, e.Cameras}
+		embs[name] = ingestEmbodiment{e.Obs, e.Act, e.ObsLow, e.ObsHigh, e.ActLow, e.ActHigh, e.Cameras, e.Frames}
 	}
 	return map[string]any{
-		"max_line_bytes": cfg.Source.MaxLineBytes,
-		"embodiments":    embs,
-		"float":          cfg.Float,
-		"partitions":     cfg.Partitions,
-		"quarantine":     cfg.Quarantine,
+		"recordings":      cfg.Recordings,
+		"image_roots":     cfg.Source.ImageRoots,
+		"max_image_bytes": cfg.Source.MaxImageBytes,
+		"max_line_bytes":  cfg.Source.MaxLineBytes,
+		"embodiments":     embs,
+		"float":           cfg.Float,
+		"partitions":      cfg.Partitions,
+		"quarantine":      cfg.Quarantine,
 	}
 }
 

@@ -980,7 +980,7 @@ func TestIngestNoObjects(t *testing.T) {
 		t.Fatal(err)
 	}
 	_, err = pipeline.Execute(context.Background(), cfg, All(), pipeline.Options{Version: "v1", Parallel: 2})
-	want := fmt.Sprintf(`ingest: no object under file://%s/ matches include ["**/*.jsonl" "**/*.jsonl.gz" "**/*.jsonl.zst"] (exclude [])`, filepath.ToSlash(filepath.Join(dir, "src")))
+	want := fmt.Sprintf(`ingest: no object under file://%s/ matches include ["**/*.jsonl" "**/*.jsonl.gz" "**/*.jsonl.zst" "**/*.mcap"] (exclude [])`, filepath.ToSlash(filepath.Join(dir, "src")))
 	if err == nil || !strings.Contains(err.Error(), want) {
 		t.Errorf("run over a source with no matching object: %v; want an error containing %s", err, want)
 	}
