@@ -426,7 +426,8 @@ func vfManifest(m *pipeline.Manifest, files map[string]bool) []VerifyProblem {
 
 // vfConfigSHA recomputes config_sha256 from the manifest's config (SPEC §5):
 // the canonical JSON (keys sorted, numbers as written, no HTML escaping)
-// without source.uri, work, output and the storage connection settings.
+// without source.uri, work, output, the storage connection settings and the
+// gates (they decide whether a version is committed, never its bytes).
 func vfConfigSHA(raw json.RawMessage) (string, error) {
 	dec := json.NewDecoder(bytes.NewReader(raw))
 	dec.UseNumber()
@@ -437,6 +438,7 @@ func vfConfigSHA(raw json.RawMessage) (string, error) {
 	delete(cfg, "work")
 	delete(cfg, "output")
 	delete(cfg, "storage")
+	delete(cfg, "gates")
 	if src, ok := cfg["source"].(map[string]any); ok {
 		delete(src, "uri")
 	}

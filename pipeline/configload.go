@@ -1277,7 +1277,7 @@ func (l *configLoader) frames(f cfgField, e *Embodiment, actOK bool) *FramesConf
 	}
 	if g, ok := fs["obs"]; ok {
 		fr.Obs = l.frameSources(g, keys["frames.source"], fr.MaxAge, true)
-		if fr.Obs != nil && len(fr.Obs) == 0 {
+		if g.val.Kind == yaml.SequenceNode && len(g.val.Content) == 0 {
 			l.fail(g.key, g.line, "must list at least one source")
 		}
 	} else {
@@ -1475,7 +1475,7 @@ func (l *configLoader) gates(f cfgField, allowed []string) *GatesConfig {
 	g.MaxDropped = share("max_dropped")
 	g.MaxSourceDropped = share("max_source_dropped")
 	if h, ok := fs["max_dropped_by"]; ok {
-		known := append(Reasons(), Stale)
+		known := gateReasons()
 		list, ok := l.entries(h.key, h.line, h.val, "a map of drop reason to a share from 0 to 1")
 		if ok {
 			g.MaxDroppedBy = make(map[string]float64, len(list))
@@ -1564,4 +1564,14 @@ func (l *configLoader) perSplit(fs map[string]cfgField, name string) map[string]
 		}
 	}
 	return out
+}
+
+// gateReasons lists the drop reasons a gate may bound: every reason of
+// Reasons(), and stale (SPEC §7.4) where that list does not have it yet.
+func gateReasons() []string {
+	rs := Reasons()
+	if !slices.Contains(rs, Stale) {
+		rs = append(rs, Stale)
+	}
+	return rs
 }

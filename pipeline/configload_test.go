@@ -337,14 +337,7 @@ func TestBadConfigs(t *testing.T) {
 	const locations = "s3://bucket/prefix, file:///abs/dir or a plain path"
 	const obsBound = "must be a finite number or a list of 10 finite numbers (one per obs dim)"
 	const dims = "obs indices must be integers from 0 to 9 (obs is 10)"
-	cases := []struct {
-		name   string
-		yaml   string
-		key    string
-		line   int
-		msg    string
-		schema schemaVerdict
-	}{
+	cases := []badConfigCase{
 		{"unknown key in storage", baseConfig + "storage:\n  endpoint: http://127.0.0.1:9000\n  secret: x\n",
 			"storage.secret", 12, "unknown key (allowed: endpoint, path_style, region, max_concurrency, part_size, attempts, timeout)", schemaRejects},
 		{"storage part size under the S3 minimum", baseConfig + "storage:\n  part_size: 1048576\n",
@@ -512,39 +505,53 @@ func TestBadConfigs(t *testing.T) {
 	}
 	sch := compileConfigSchema(t)
 	for _, tc := range cases {
-		t.Run(tc.name, func(t *testing.T) {
-			_, err := ParseConfig([]byte(tc.yaml), t.TempDir(), "fleet.yaml")
-			ce, ok := err.(*ConfigError)
-			if !ok {
-				t.Fatalf("error = %#v, want a *ConfigError", err)
-			}
-			want := ConfigError{File: "fleet.yaml", Key: tc.key, Line: tc.line, Msg: tc.msg}
-			if *ce != want {
-				t.Errorf("error = %+v\n  want %+v", *ce, want)
-			}
+		t.Run(tc.name, func(t *testing.T) { checkBadConfig(t, sch, tc) })
+	}
+}
 
-			inst, jerr := yamlAsJSON([]byte(tc.yaml))
-			switch tc.schema {
-			case notJSON:
-				if jerr == nil {
-					t.Errorf("the file converts to JSON, but the case says it has no JSON form")
-				}
-			case schemaRejects:
-				if jerr != nil {
-					t.Fatalf("as JSON: %v", jerr)
-				}
-				if sch.Validate(inst) == nil {
-					t.Errorf("the schema accepts it; it should reject it")
-				}
-			case schemaAccepts:
-				if jerr != nil {
-					t.Fatalf("as JSON: %v", jerr)
-				}
-				if err := sch.Validate(inst); err != nil {
-					t.Errorf("the schema rejects it (%v); update the case if the schema learned the rule", err)
-				}
-			}
-		})
+// badConfigCase is one config the loader must refuse with exactly this
+// key, line and message, and what the JSON Schema makes of it.
+type badConfigCase struct {
+	name   string
+	yaml   string
+	key    string
+	line   int
+	msg    string
+	schema schemaVerdict
+}
+
+func checkBadConfig(t *testing.T, sch *jsonschema.Schema, tc badConfigCase) {
+	t.Helper()
+	_, err := ParseConfig([]byte(tc.yaml), t.TempDir(), "fleet.yaml")
+	ce, ok := err.(*ConfigError)
+	if !ok {
+		t.Fatalf("error = %#v, want a *ConfigError", err)
+	}
+	want := ConfigError{File: "fleet.yaml", Key: tc.key, Line: tc.line, Msg: tc.msg}
+	if *ce != want {
+		t.Errorf("error = %+v\n  want %+v", *ce, want)
+	}
+
+	inst, jerr := yamlAsJSON([]byte(tc.yaml))
+	switch tc.schema {
+	case notJSON:
+		if jerr == nil {
+			t.Errorf("the file converts to JSON, but the case says it has no JSON form")
+		}
+	case schemaRejects:
+		if jerr != nil {
+			t.Fatalf("as JSON: %v", jerr)
+		}
+		if sch.Validate(inst) == nil {
+			t.Errorf("the schema accepts it; it should reject it")
+		}
+	case schemaAccepts:
+		if jerr != nil {
+			t.Fatalf("as JSON: %v", jerr)
+		}
+		if err := sch.Validate(inst); err != nil {
+			t.Errorf("the schema rejects it (%v); update the case if the schema learned the rule", err)
+		}
 	}
 }
 
@@ -923,5 +930,310 @@ func BenchmarkLoadConfig(b *testing.B) {
 			b.Fatal(err)
 		}
 		_ = c.SHA256()
+	}
+}
+
+// framesConfig is baseConfig with a camera and a frames section (SPEC §7.3).
+// Its lines after baseConfig's nine:
+//
+//	10     cameras: [wrist]
+//	11     frames:
+//	12       rate: 10
+//	13       max_age: 150ms
+//	14       obs:
+//	15         - {topic: /arm/joints, field: position}
+//	16       act:
+//	17         - {topic: /arm/command, field: velocity, align: next, max_age: 60ms}
+//	18       cameras:
+//	19         wrist: {topic: /wrist/image, field: data}
+const framesConfig = baseConfig + `    cameras: [wrist]
+    frames:
+      rate: 10
+      max_age: 150ms
+      obs:
+        - {topic: /arm/joints, field: position}
+      act:
+        - {topic: /arm/command, field: velocity, align: next, max_age: 60ms}
+      cameras:
+        wrist: {topic: /wrist/image, field: data}
+`
+
+// editFrames returns framesConfig with the first occurrence of old replaced.
+func editFrames(t *testing.T, old, new string) string {
+	t.Helper()
+	if !strings.Contains(framesConfig, old) {
+		t.Fatalf("framesConfig has no %q", old)
+	}
+	return strings.Replace(framesConfig, old, new, 1)
+}
+
+func TestFramesConfigResolved(t *testing.T) {
+	c, err := ParseConfig([]byte(framesConfig+"      task: {topic: /session/task, field: name}\n"), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := &FramesConfig{
+		Rate:   10,
+		MaxAge: Duration(150 * time.Millisecond),
+		// align defaults to hold and max_age to the section's (SPEC §7.3).
+		Obs:     []FieldSource{{Topic: "/arm/joints", Field: "position", Align: AlignHold, MaxAge: Duration(150 * time.Millisecond)}},
+		Act:     []FieldSource{{Topic: "/arm/command", Field: "velocity", Align: AlignNext, MaxAge: Duration(60 * time.Millisecond)}},
+		Cameras: map[string]FieldSource{"wrist": {Topic: "/wrist/image", Field: "data", Align: AlignHold, MaxAge: Duration(150 * time.Millisecond)}},
+		Task:    &FieldRef{Topic: "/session/task", Field: "name"},
+	}
+	if got := c.Embodiments["picker6"].Frames; !reflect.DeepEqual(got, want) {
+		t.Errorf("frames = %+v\nwant %+v", got, want)
+	}
+	// No recordings section: SPEC §7.1's example is the default.
+	wantRec := &RecordingsConfig{Unit: IdentityRule{Metadata: "robot", Key: "unit"}, Embodiment: IdentityRule{Metadata: "robot", Key: "model"}, Time: "log_time"}
+	if !reflect.DeepEqual(c.Recordings, wantRec) {
+		t.Errorf("recordings = %+v, want %+v", c.Recordings, wantRec)
+	}
+	// A config without frames has no recordings rules at all.
+	plain, err := ParseConfig([]byte(baseConfig), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if plain.Recordings != nil || plain.Embodiments["picker6"].Frames != nil {
+		t.Errorf("config without frames: recordings %+v, frames %+v, want both nil", plain.Recordings, plain.Embodiments["picker6"].Frames)
+	}
+}
+
+func TestRecordingsConfigResolved(t *testing.T) {
+	c, err := ParseConfig([]byte(framesConfig+"recordings:\n  unit: {path: '^fleet/([^/]+)/'}\n  time: publish_time\n"), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// embodiment is left out, so it keeps SPEC §7.1's {metadata: robot, key: model}.
+	want := &RecordingsConfig{Unit: IdentityRule{Path: "^fleet/([^/]+)/"}, Embodiment: IdentityRule{Metadata: "robot", Key: "model"}, Time: "publish_time"}
+	if !reflect.DeepEqual(c.Recordings, want) {
+		t.Errorf("recordings = %+v, want %+v", c.Recordings, want)
+	}
+}
+
+func TestGatesAndImageRootsResolved(t *testing.T) {
+	const extra = `  image_roots: ["s3://fleet-images/cams", "file:///srv/img/"]
+  max_image_bytes: 1048576
+gates:
+  max_dropped: 0.05
+  max_dropped_by: {stale: 0.02, oversize: 0}
+  max_source_dropped: 0.5
+  max_skipped: 3
+  max_incomplete: 0
+  min_episodes: {train: 100, val: 10}
+  min_frames: {test: 1000}
+  max_drift: 3.5
+  baseline: 20261201T000000Z
+`
+	c, err := ParseConfig([]byte(strings.Replace(baseConfig, "  uri: logs\n", "  uri: logs\n"+extra[:strings.Index(extra, "gates:")], 1)+extra[strings.Index(extra, "gates:"):]), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if want := []string{"s3://fleet-images/cams/", "file:///srv/img/"}; !reflect.DeepEqual(c.Source.ImageRoots, want) || c.Source.MaxImageBytes != 1048576 {
+		t.Errorf("image_roots %v, max_image_bytes %d; want %v, 1048576", c.Source.ImageRoots, c.Source.MaxImageBytes, want)
+	}
+	f := func(v float64) *float64 { return &v }
+	n := func(v int) *int { return &v }
+	want := &GatesConfig{
+		MaxDropped: f(0.05), MaxDroppedBy: map[string]float64{"stale": 0.02, "oversize": 0}, MaxSourceDropped: f(0.5),
+		MaxSkipped: n(3), MaxIncomplete: n(0),
+		MinEpisodes: map[string]int64{"train": 100, "val": 10}, MinFrames: map[string]int64{"test": 1000},
+		MaxDrift: f(3.5), Baseline: "20261201T000000Z",
+	}
+	if !reflect.DeepEqual(c.Gates, want) {
+		t.Errorf("gates = %+v, want %+v", c.Gates, want)
+	}
+}
+
+// TestGatesLeaveHashAlone: gates decide whether a version is committed,
+// never its bytes, so they change neither config_sha256 nor the canonical
+// JSON it is taken over; the manifest's config still records them.
+func TestGatesLeaveHashAlone(t *testing.T) {
+	a, err := ParseConfig([]byte(framesConfig), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := ParseConfig([]byte(framesConfig+"gates:\n  max_dropped: 0.1\n"), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if a.SHA256() != b.SHA256() {
+		t.Errorf("config_sha256 changed with a gate: %s vs %s", a.SHA256(), b.SHA256())
+	}
+	if !strings.Contains(string(b.CanonicalJSON()), `"gates":{"max_dropped":0.1}`) {
+		t.Errorf("canonical JSON %s does not record the gates", b.CanonicalJSON())
+	}
+	c, err := ParseConfig([]byte(editFrames(t, "max_age: 150ms", "max_age: 200ms")), "/etc/hindcast", "fleet.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if a.SHA256() == c.SHA256() {
+		t.Errorf("config_sha256 did not change with frames.max_age")
+	}
+}
+
+func TestNearestKey(t *testing.T) {
+	allowed := configKeys()["embodiments.*"]
+	cases := map[string]string{
+		"goal_tolerence": "goal_tolerance", // one substitution
+		"goal_dim":       "goal_dims",      // one deletion
+		"camera":         "cameras",
+		"acts":           "act",
+		"frame":          "frames",
+		"colour":         "", // nothing near
+		"x":              "",
+	}
+	for name, want := range cases {
+		if got := nearestKey(name, allowed); got != want {
+			t.Errorf("nearestKey(%q) = %q, want %q", name, got, want)
+		}
+	}
+	// Levenshtein distances computed by hand: kitten→sitting is the textbook
+	// example with distance 3 (common practice).
+	for _, c := range []struct {
+		a, b string
+		d    int
+	}{{"kitten", "sitting", 3}, {"", "abc", 3}, {"abc", "abc", 0}, {"flaw", "lawn", 2}} {
+		if got := editDistance(c.a, c.b); got != c.d {
+			t.Errorf("editDistance(%q, %q) = %d, want %d", c.a, c.b, got, c.d)
+		}
+	}
+}
+
+func TestSchemaDropReasonsMatchSummary(t *testing.T) {
+	var s map[string]any
+	if err := json.Unmarshal(schemas.ConfigSchema(), &s); err != nil {
+		t.Fatal(err)
+	}
+	by := s["properties"].(map[string]any)["gates"].(map[string]any)["properties"].(map[string]any)["max_dropped_by"].(map[string]any)
+	var got []string
+	for _, r := range by["propertyNames"].(map[string]any)["enum"].([]any) {
+		got = append(got, r.(string))
+	}
+	want := gateReasons()
+	sort.Strings(got)
+	sort.Strings(want)
+	if !reflect.DeepEqual(got, want) {
+		t.Errorf("schema gates.max_dropped_by reasons %v, loader %v", got, want)
+	}
+}
+
+func TestBadRecordingsFramesGatesConfigs(t *testing.T) {
+	const embKeys = "obs, act, obs_low, obs_high, act_low, act_high, cameras, goal_dims, goal_tolerance, frames"
+	const fr = "embodiments.picker6.frames"
+	withSource := func(lines string) string {
+		return strings.Replace(baseConfig, "  uri: logs\n", "  uri: logs\n"+lines, 1)
+	}
+	cases := []badConfigCase{
+		// Issue 9: a typo is an unknown key with the nearest known key, not
+		// the correct key missing.
+		{"misspelled goal_tolerance", editBase(t, "goal_tolerance", "goal_tolerence"),
+			"embodiments.picker6.goal_tolerence", 9, "unknown key; did you mean goal_tolerance? (allowed: " + embKeys + ")", schemaRejects},
+		{"misspelled recordings key", framesConfig + "recordings:\n  tme: log_time\n",
+			"recordings.tme", 21, "unknown key; did you mean time? (allowed: unit, embodiment, time)", schemaRejects},
+
+		// frames (SPEC §7.3)
+		{"rate and clock", editFrames(t, "      rate: 10\n", "      rate: 10\n      clock: /tick\n"),
+			fr + ".clock", 13, "give either rate or clock, not both", schemaRejects},
+		{"neither rate nor clock", editFrames(t, "      rate: 10\n", ""),
+			fr + ".rate", 11, "required: rate (ticks per second) or clock (a topic)", schemaRejects},
+		{"rate 0", editFrames(t, "rate: 10", "rate: 0"),
+			fr + ".rate", 12, "must be a number > 0 and <= 1e9 (ticks per second), got 0", schemaRejects},
+		{"clock empty", editFrames(t, "rate: 10", `clock: ""`),
+			fr + ".clock", 12, "must be a topic name, got an empty string", schemaRejects},
+		{"max_age missing", editFrames(t, "      max_age: 150ms\n", ""),
+			fr + ".max_age", 11, "required: the oldest value a tick may take, a Go duration > 0 such as 150ms", schemaRejects},
+		{"max_age 0", editFrames(t, "max_age: 150ms", "max_age: 0s"),
+			fr + ".max_age", 13, `must be a Go duration > 0 such as 150ms or 2s, got "0s"`, schemaRejects},
+		{"source max_age negative", editFrames(t, "max_age: 60ms", "max_age: -60ms"),
+			fr + ".act[0].max_age", 17, `must be a Go duration > 0 such as 150ms or 2s, got "-60ms"`, schemaRejects},
+		{"unknown align", editFrames(t, "align: next", "align: hover"),
+			fr + ".act[0].align", 17, `must be hold, next, nearest or linear, got "hover"`, schemaRejects},
+		{"linear on a camera", editFrames(t, "field: data}", "field: data, align: linear}"),
+			fr + ".cameras.wrist.align", 19, "linear interpolates numbers, so it cannot align a camera; use hold, next or nearest", schemaRejects},
+		{"undeclared camera", framesConfig + "        head: {topic: /head/image, field: data}\n",
+			fr + ".cameras.head", 20, `camera "head" is not declared in the embodiment's cameras [wrist]`, schemaAccepts},
+		{"declared camera without a source", editFrames(t, "cameras: [wrist]", "cameras: [wrist, scene]"),
+			fr + ".cameras", 18, `declared camera "scene" has no source (every declared camera must be on every frame)`, schemaAccepts},
+		{"bad field path", editFrames(t, "field: position}", `field: "position[3"}`),
+			fr + ".obs[0].field", 15, `field path "position[3": '[' without ']'`, schemaAccepts},
+		{"source without topic", editFrames(t, "{topic: /arm/joints, field: position}", "{field: position}"),
+			fr + ".obs[0].topic", 15, "required: the topic name", schemaRejects},
+		{"unknown key in a source", editFrames(t, "field: position}", "field: position, rate: 5}"),
+			fr + ".obs[0].rate", 15, "unknown key (allowed: topic, field, align, max_age)", schemaRejects},
+		{"no obs sources", editFrames(t, "      obs:\n        - {topic: /arm/joints, field: position}\n", "      obs: []\n"),
+			fr + ".obs", 14, "must list at least one source", schemaRejects},
+		{"act sources on an observation-only embodiment", editFrames(t, "act: 7", "act: 0"),
+			fr + ".act", 16, "the embodiment has act 0 (observation only), so it takes no act sources", schemaAccepts},
+		{"label without field", framesConfig + "      events: {topic: /session/event}\n",
+			fr + ".events.field", 20, "required: the field path", schemaRejects},
+		{"label with align", framesConfig + "      success: {topic: /session/outcome, field: ok, align: hold}\n",
+			fr + ".success.align", 20, "unknown key (allowed: topic, field)", schemaRejects},
+
+		// recordings (SPEC §7.1)
+		{"identity with both forms", framesConfig + "recordings:\n  unit: {metadata: robot, key: unit, path: '^u/([^/]+)/'}\n",
+			"recordings.unit", 21, "must be either {metadata, key} or {path}, not both", schemaRejects},
+		{"identity path without a group", framesConfig + "recordings:\n  unit: {path: '^u/[^/]+/'}\n",
+			"recordings.unit.path", 21, `must have a capture group (its first group is the value), got "^u/[^/]+/"`, schemaAccepts},
+		{"identity path not RE2", framesConfig + "recordings:\n  embodiment: {path: '(a'}\n",
+			"recordings.embodiment.path", 21, "not a valid RE2 regular expression: error parsing regexp: missing closing ): `(a`", schemaAccepts},
+		{"identity metadata without key", framesConfig + "recordings:\n  unit: {metadata: robot}\n",
+			"recordings.unit.key", 21, "required with metadata: the key of the Metadata record", schemaRejects},
+		{"identity empty", framesConfig + "recordings:\n  unit: {}\n",
+			"recordings.unit", 21, "must be {metadata, key} or {path}", schemaRejects},
+		{"unknown time", framesConfig + "recordings:\n  time: wall\n",
+			"recordings.time", 21, `must be log_time or publish_time, got "wall"`, schemaRejects},
+
+		// gates (issue 9)
+		{"share above 1", baseConfig + "gates:\n  max_dropped: 1.5\n",
+			"gates.max_dropped", 11, "must be a share from 0 to 1, got 1.5", schemaRejects},
+		{"negative source share", baseConfig + "gates:\n  max_source_dropped: -0.1\n",
+			"gates.max_source_dropped", 11, "must be a share from 0 to 1, got -0.1", schemaRejects},
+		{"unknown drop reason", baseConfig + "gates:\n  max_dropped_by:\n    stal: 0.1\n",
+			"gates.max_dropped_by.stal", 12, "unknown drop reason; did you mean stale? (known: " + strings.Join(gateReasons(), ", ") + ")", schemaRejects},
+		{"reason share above 1", baseConfig + "gates:\n  max_dropped_by: {oversize: 2}\n",
+			"gates.max_dropped_by.oversize", 11, "must be a share from 0 to 1, got 2", schemaRejects},
+		{"unknown split", baseConfig + "gates:\n  min_episodes: {validation: 3}\n",
+			"gates.min_episodes.validation", 11, "unknown split (known: train, val, test)", schemaRejects},
+		{"negative count per split", baseConfig + "gates:\n  min_frames: {train: -1}\n",
+			"gates.min_frames.train", 11, "must be an integer >= 0, got -1", schemaRejects},
+		{"negative max_skipped", baseConfig + "gates:\n  max_skipped: -1\n",
+			"gates.max_skipped", 11, "must be an integer from 0 to 2147483647, got -1", schemaRejects},
+		{"max_drift 0", baseConfig + "gates:\n  max_drift: 0\n",
+			"gates.max_drift", 11, "must be a number > 0 (standard deviations), got 0", schemaRejects},
+		{"baseline ..", baseConfig + "gates:\n  baseline: '..'\n",
+			"gates.baseline", 11, `version "..": "." and ".." are not allowed (they name folders)`, schemaRejects},
+		{"baseline with a slash", baseConfig + "gates:\n  baseline: a/b\n",
+			"gates.baseline", 11, `version "a/b": want 1–64 of A-Za-z0-9._-`, schemaRejects},
+
+		// source.image_roots and max_image_bytes (issue 13)
+		{"image root as a plain path", withSource("  image_roots: [images]\n"),
+			"source.image_roots", 4, `must be an s3://bucket/prefix or file:///abs/dir prefix, got "images"`, schemaRejects},
+		{"image root of another scheme", withSource("  image_roots: ['https://cdn.example/img/']\n"),
+			"source.image_roots", 4, `must be an s3://bucket/prefix or file:///abs/dir prefix, got "https://cdn.example/img/"`, schemaRejects},
+		{"image root with ..", withSource("  image_roots:\n    - s3://fleet-images/a/../b/\n"),
+			"source.image_roots", 5, `must not hold . or .. segments, got "s3://fleet-images/a/../b/"`, schemaAccepts},
+		{"image root relative file URI", withSource("  image_roots: ['file://img/']\n"),
+			"source.image_roots", 4, `a file URI must name an absolute path (file:///abs/dir), got "file://img/"`, schemaRejects},
+		{"max_image_bytes 0", withSource("  max_image_bytes: 0\n"),
+			"source.max_image_bytes", 4, "must be an integer from 1 to 1073741824, got 0", schemaRejects},
+		{"max_image_bytes above 1 GiB", withSource("  max_image_bytes: 1073741825\n"),
+			"source.max_image_bytes", 4, "must be an integer from 1 to 1073741824, got 1073741825", schemaRejects},
+
+		// bounds (issue 13)
+		{"max_line_bytes above 64 MiB", withSource("  max_line_bytes: 67108865\n"),
+			"source.max_line_bytes", 4, "must be an integer from 1 to 67108864, got 67108865", schemaRejects},
+		{"row_group_rows above 2^20", baseConfig + "parquet:\n  row_group_rows: 1048577\n",
+			"parquet.row_group_rows", 11, "must be an integer from 1 to 1048576, got 1048577", schemaRejects},
+		{"max_steps above 10^6", baseConfig + "episodes:\n  max_steps: 1000001\n",
+			"episodes.max_steps", 11, "must be an integer from 2 to 1000000, got 1000001", schemaRejects},
+		{"future above 1024", baseConfig + "goals:\n  future: 1025\n",
+			"goals.future", 11, "must be an integer from 0 to 1024, got 1025", schemaRejects},
+		{"horizon above 10^6", baseConfig + "goals:\n  horizon: 1000001\n",
+			"goals.horizon", 11, "must be an integer from 0 to 1000000, got 1000001", schemaRejects},
+	}
+	sch := compileConfigSchema(t)
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) { checkBadConfig(t, sch, tc) })
 	}
 }
