@@ -95,7 +95,7 @@ func TestExampleConfigsLoadAndMatchSchema(t *testing.T) {
 	for i, f := range files {
 		names[i] = filepath.Base(f)
 	}
-	for _, want := range []string{"aisle-pickers.yaml", "bench.yaml"} {
+	for _, want := range []string{"aisle-pickers.yaml", "aisle-pickers-recordings.yaml", "bench.yaml"} {
 		if !slices.Contains(names, want) {
 			t.Errorf("configs/%s is missing; found %v", want, names)
 		}
