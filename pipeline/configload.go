@@ -56,6 +56,12 @@ const (
 	// maxGoalsPerStrategy bounds goals.future, geometric, final and negative:
 	// each step yields that many pairs, allocated per step.
 	maxGoalsPerStrategy = 1024
+	// maxUploadBuffer bounds storage.part_size × storage.max_concurrency,
+	// the bytes one upload holds in memory.
+	maxUploadBuffer = 4 << 30
+	// maxCameras bounds an embodiment's cameras: pack holds a row group of
+	// every camera's bytes in memory.
+	maxCameras = 64
 	// maxFrameSources bounds the sources of one frames list.
 	maxFrameSources = 1024
 	// maxRate bounds frames.rate: the period round(1e9/rate) ns must be >= 1.
@@ -578,6 +584,14 @@ func (l *configLoader) storage(f cfgField, allowed []string, s *StorageConfig) {
 		v, _ := l.integer(g, 5<<20, 5<<30)
 		s.PartSize = v
 	}
+	// An upload buffers up to max_concurrency parts at once.
+	if buf := int64(s.MaxConcurrency) * s.PartSize; buf > maxUploadBuffer {
+		g, ok := fs["part_size"]
+		if !ok {
+			g = fs["max_concurrency"]
+		}
+		l.fail(g.key, g.line, "part_size × max_concurrency (%d × %d) must be at most %d (4 GiB): an upload buffers that many bytes at once", s.PartSize, s.MaxConcurrency, int64(maxUploadBuffer))
+	}
 	if g, ok := fs["attempts"]; ok {
 		v, _ := l.integer(g, 1, 100)
 		s.Attempts = int(v)
@@ -888,6 +902,10 @@ func (l *configLoader) boundOrder(fs map[string]cfgField, lowName, highName stri
 func (l *configLoader) cameras(f cfgField) []string {
 	names, lines, ok := l.strList(f, "camera names")
 	if !ok {
+		return nil
+	}
+	if len(names) > maxCameras {
+		l.fail(f.key, f.line, "must list at most %d cameras, got %d", maxCameras, len(names))
 		return nil
 	}
 	seen := make(map[string]string, len(names))
@@ -1268,7 +1286,7 @@ func (l *configLoader) frames(f cfgField, e *Embodiment, actOK bool) *FramesConf
 	case hasClock:
 		fr.Clock = l.nonEmpty(clock, "a topic name")
 	default:
-		l.fail(f.key+".rate", f.line, "required: rate (ticks per second) or clock (a topic)")
+		l.missing(f.key+".rate", f.line, "required: rate (ticks per second) or clock (a topic)")
 	}
 	if g, ok := fs["max_age"]; ok {
 		fr.MaxAge, _ = l.duration(g)

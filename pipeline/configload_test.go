@@ -1221,6 +1221,14 @@ func TestBadRecordingsFramesGatesConfigs(t *testing.T) {
 			"source.max_image_bytes", 4, "must be an integer from 1 to 1073741824, got 1073741825", schemaRejects},
 
 		// bounds (issue 13)
+		{"misspelled rate", editFrames(t, "rate: 10", "rte: 10"),
+			fr + ".rte", 12, "unknown key; did you mean rate? (allowed: rate, clock, max_age, obs, act, cameras, events, task, success)", schemaRejects},
+		{"upload buffer above 4 GiB", baseConfig + "storage:\n  max_concurrency: 1024\n",
+			"storage.max_concurrency", 11, "part_size × max_concurrency (16777216 × 1024) must be at most 4294967296 (4 GiB): an upload buffers that many bytes at once", schemaAccepts},
+		{"upload buffer above 4 GiB by part_size", baseConfig + "storage:\n  part_size: 1073741824\n",
+			"storage.part_size", 11, "part_size × max_concurrency (1073741824 × 8) must be at most 4294967296 (4 GiB): an upload buffers that many bytes at once", schemaAccepts},
+		{"more than 64 cameras", editBase(t, "    goal_tolerance: 0.03\n", "    goal_tolerance: 0.03\n    cameras: ["+strings.Repeat("c,", 64)+"c]\n"),
+			"embodiments.picker6.cameras", 10, "must list at most 64 cameras, got 65", schemaRejects},
 		{"max_line_bytes above 64 MiB", withSource("  max_line_bytes: 67108865\n"),
 			"source.max_line_bytes", 4, "must be an integer from 1 to 67108864, got 67108865", schemaRejects},
 		{"row_group_rows above 2^20", baseConfig + "parquet:\n  row_group_rows: 1048577\n",
