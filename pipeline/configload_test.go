@@ -906,6 +906,7 @@ func TestSchemaMatchesLoader(t *testing.T) {
 // failure is a *ConfigError, and that a loaded config has canonical JSON.
 func FuzzParseConfig(f *testing.F) {
 	f.Add([]byte(baseConfig))
+	f.Add([]byte(framesConfig + "recordings:\n  unit: {path: '^u/([^/]+)/'}\ngates:\n  max_dropped_by: {stale: 0.1}\n  min_frames: {train: 3}\n"))
 	f.Add([]byte(baseConfig + "    obs_low: [1, 2]\n    cameras: [a, A]\n"))
 	f.Add([]byte("a: &x [*x]\n"))
 	f.Add([]byte("embodiments: {a: {obs: 1, goal_dims: [0, 0], obs_low: .nan}}\n"))
