@@ -476,8 +476,9 @@ func (a *aligner) emit(tau int64) error {
 	return a.fn(t)
 }
 
-// prune drops the messages no later tick can use: all but the last one at
-// or before the earliest tick still to come (ticks only move forward, and no
+// prune drops the messages no later tick can use: all before the last one
+// earlier than the earliest tick still to come (messages at that tick's time
+// stay: next takes the first of them, hold the last) (ticks only move forward, and no
 // tick to come is earlier than the message just read). This keeps, per
 // source, only the messages within its window around the pending tick.
 func (a *aligner) prune(now int64) {
@@ -489,7 +490,7 @@ func (a *aligner) prune(now int64) {
 	}
 	for _, s := range a.all {
 		k := 0
-		for k+1 < len(s.buf) && s.buf[k+1].t <= tau {
+		for k+1 < len(s.buf) && s.buf[k+1].t < tau {
 			k++
 		}
 		if k > 0 {
