@@ -37,6 +37,15 @@ func Identify(ctx context.Context, src mcapread.Source, key string, cfg *pipelin
 		}
 		return Identity{}, fmt.Errorf("identify %s: %w", key, err)
 	}
+	return identify(key, cfg, func(name string) (map[string]string, error) {
+		md, _, err := mcapread.FindMetadata(ctx, src, name)
+		return md, err
+	})
+}
+
+// identify applies §7.1's rules given a way to read a Metadata record (nil
+// map when there is none), so the rules are testable without a file.
+func identify(key string, cfg *pipeline.Config, metadata func(name string) (map[string]string, error)) (Identity, error) {
 	var rules pipeline.RecordingsConfig
 	if cfg.Recordings != nil {
 		rules = *cfg.Recordings
@@ -61,7 +70,7 @@ func Identify(ctx context.Context, src mcapread.Source, key string, cfg *pipelin
 		md, ok := found[r.Metadata]
 		if !ok {
 			var err error
-			md, _, err = mcapread.FindMetadata(ctx, src, r.Metadata)
+			md, err = metadata(r.Metadata)
 			if err != nil {
 				return "", false, fmt.Errorf("identify %s: metadata %s: %w", key, r.Metadata, err)
 			}
