@@ -488,6 +488,27 @@ func (a *aligner) prune(now int64) {
 	} else if a.period == 0 && len(a.clockT) > 0 && a.clockT[0] < tau {
 		tau = a.clockT[0]
 	}
+	// Labels: task keeps only its last value before tau; events and success
+	// values before tau all fall in the next tick's (τ′, τ], where only the
+	// last one counts.
+	if a.task != nil {
+		for len(a.task.queue) > 0 && a.task.queue[0].t < tau {
+			a.taskVal, a.hasTask = a.task.queue[0].s, true
+			a.task.queue = a.task.queue[1:]
+		}
+	}
+	for _, l := range []*label{a.events, a.success} {
+		if l == nil {
+			continue
+		}
+		k := 0
+		for k+1 < len(l.queue) && l.queue[k+1].t < tau {
+			k++
+		}
+		if k > 0 {
+			l.queue = append(l.queue[:0], l.queue[k:]...)
+		}
+	}
 	for _, s := range a.all {
 		k := 0
 		for k+1 < len(s.buf) && s.buf[k+1].t < tau {

@@ -319,21 +319,47 @@ func TestUndecodableNotUsed(t *testing.T) {
 
 func TestWindowBounded(t *testing.T) {
 	// 100000 messages at 1 ns apart, max_age 20: the window of a hold
-	// source never holds more than the messages within about max_age+P.
+	// source, and the events and task queues, never hold more than the
+	// messages within about max_age+P.
 	emb := oneSource(pipeline.AlignHold, 20)
-	a, err := newAligner(emb, func(*Tick) error { return nil })
+	emb.Frames.Events = &pipeline.FieldRef{Topic: "/e", Field: "kind"}
+	emb.Frames.Task = &pipeline.FieldRef{Topic: "/task", Field: "name"}
+	var ticks, evs int
+	a, err := newAligner(emb, func(k *Tick) error {
+		ticks++
+		if k.Ev == "start" && k.Task == "t" {
+			evs++
+		}
+		return nil
+	})
 	if err != nil {
 		t.Fatal(err)
 	}
 	ch := &mcapread.Channel{Topic: "/a", MessageEncoding: "json"}
+	che := &mcapread.Channel{Topic: "/e", MessageEncoding: "json"}
+	cht := &mcapread.Channel{Topic: "/task", MessageEncoding: "json"}
 	maxBuf := 0
 	for i := int64(0); i < 100000; i++ {
 		if err := a.add(&mcapread.Message{Channel: ch, Time: i, Data: []byte(fmt.Sprintf(`{"x":%d}`, i))}); err != nil {
 			t.Fatal(err)
 		}
-		if n := len(a.all[0].buf); n > maxBuf {
-			maxBuf = n
+		for _, m := range []*mcapread.Message{{Channel: che, Time: i, Data: []byte(`{"kind":"start"}`)}, {Channel: cht, Time: i, Data: []byte(`{"name":"t"}`)}} {
+			if err := a.add(m); err != nil {
+				t.Fatal(err)
+			}
 		}
+		for _, n := range []int{len(a.all[0].buf), len(a.events.queue), len(a.task.queue)} {
+			if n > maxBuf {
+				maxBuf = n
+			}
+		}
+	}
+	if err := a.flush(0, true); err != nil {
+		t.Fatal(err)
+	}
+	// Ticks at 0, 100, …, 99900: 1000, each with an events and a task value.
+	if ticks != 1000 || evs != 1000 {
+		t.Fatalf("ticks %d, with labels %d", ticks, evs)
 	}
 	if maxBuf > 20+100+2 {
 		t.Fatalf("window grew to %d messages", maxBuf)
