@@ -392,7 +392,8 @@ func (s *source) value(tau int64) (used []int, stale bool) {
 func (a *aligner) emit(tau int64) error {
 	a.stats.Ticks++
 	t := &a.tick
-	*t = Tick{Index: a.stats.Ticks, T: tau, Obs: t.Obs[:0], Act: t.Act[:0], Images: t.Images[:0], HasAct: len(a.act) > 0}
+	// Obs, Act and Images are fresh per tick: the caller may keep them.
+	*t = Tick{Index: a.stats.Ticks, T: tau, HasAct: len(a.act) > 0}
 	// Labels over (τ′, τ]; task is the last ≤ τ whatever its age.
 	if a.events != nil {
 		for len(a.events.queue) > 0 && a.events.queue[0].t <= tau {
