@@ -306,13 +306,14 @@ func TestUndecodableNotUsed(t *testing.T) {
 		{"/a", 200, `{"x":2`}, // cut JSON: undecodable
 		{"/a", 210, `{"x":3}`},
 		{"/other", 220, `{"x":3}`}, // not in frames: neither decoded nor counted
+		{"/a", 350, `[`},           // undecodable: does not extend the ticks to 300
 	}
 	got, _, st := runTicks(t, oneSource(pipeline.AlignHold, 150), msgs)
 	want := []tickOut{{T: 100, Obs: []float64{1}}, {T: 200, Obs: []float64{1}}}
 	if !reflect.DeepEqual(got, want) {
 		t.Fatalf("got %+v", got)
 	}
-	if st.Messages["/a"] != 2 || st.Undecodable["/a"] != 1 || len(st.Messages) != 1 || len(st.Undecodable) != 1 {
+	if st.Messages["/a"] != 2 || st.Undecodable["/a"] != 2 || len(st.Messages) != 1 || len(st.Undecodable) != 1 || st.Ticks != 2 {
 		t.Fatalf("stats %+v", st)
 	}
 }
