@@ -6,14 +6,13 @@
 // malformed, and dim_mismatch of linear interpolation). The checks common to
 // every input format (lengths, finiteness, bounds, image completeness) run
 // in the ingest stage over the ticks it yields.
-//
-// CONTRACT STUB: the signatures below are fixed; the bodies are filled in by
-// the package's own change.
 package recording
 
 import (
 	"context"
 	"errors"
+	"fmt"
+	"regexp"
 
 	"hindcast/pipeline"
 	"hindcast/stages/recording/mcapread"
@@ -32,8 +31,74 @@ type Identity struct {
 // Identify finds the unit and embodiment of the recording stored under key.
 // An error is a failure to read the store, never a property of the file.
 func Identify(ctx context.Context, src mcapread.Source, key string, cfg *pipeline.Config) (Identity, error) {
-	return Identity{}, errors.New("recording: not implemented")
+	if err := mcapread.CheckHeader(ctx, src); err != nil {
+		if errors.Is(err, mcapread.ErrUnreadable) {
+			return Identity{Skip: pipeline.SkipUnreadable}, nil
+		}
+		return Identity{}, fmt.Errorf("identify %s: %w", key, err)
+	}
+	return identify(key, cfg, func(name string) (map[string]string, error) {
+		md, _, err := mcapread.FindMetadata(ctx, src, name)
+		return md, err
+	})
 }
+
+// identify applies §7.1's rules given a way to read a Metadata record (nil
+// map when there is none), so the rules are testable without a file.
+func identify(key string, cfg *pipeline.Config, metadata func(name string) (map[string]string, error)) (Identity, error) {
+	var rules pipeline.RecordingsConfig
+	if cfg.Recordings != nil {
+		rules = *cfg.Recordings
+	}
+	// One lookup per Metadata name: unit and embodiment often share it.
+	found := map[string]map[string]string{}
+	lookup := func(r pipeline.IdentityRule) (string, bool, error) {
+		if r.Path != "" {
+			re, err := regexp.Compile(r.Path)
+			if err != nil {
+				return "", false, fmt.Errorf("identify %s: path %q: %w", key, r.Path, err)
+			}
+			m := re.FindStringSubmatch(key)
+			if len(m) < 2 {
+				return "", false, nil
+			}
+			return m[1], true, nil
+		}
+		if r.Metadata == "" {
+			return "", false, nil
+		}
+		md, ok := found[r.Metadata]
+		if !ok {
+			var err error
+			md, err = metadata(r.Metadata)
+			if err != nil {
+				return "", false, fmt.Errorf("identify %s: metadata %s: %w", key, r.Metadata, err)
+			}
+			found[r.Metadata] = md
+		}
+		v, ok := md[r.Key]
+		return v, ok, nil
+	}
+	unit, ok, err := lookup(rules.Unit)
+	if err != nil {
+		return Identity{}, err
+	}
+	if !ok || !unitPattern.MatchString(unit) {
+		return Identity{Skip: pipeline.SkipNoUnit}, nil
+	}
+	emb, ok, err := lookup(rules.Embodiment)
+	if err != nil {
+		return Identity{}, err
+	}
+	if e := cfg.Embodiments[emb]; !ok || e == nil || e.Frames == nil {
+		return Identity{Unit: unit, Embodiment: emb, Skip: pipeline.SkipUnknownEmbodiment}, nil
+	}
+	return Identity{Unit: unit, Embodiment: emb}, nil
+}
+
+// unitPattern is SPEC §1's unit pattern (the JSON Lines reader checks the
+// same pattern byte by byte).
+var unitPattern = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
 
 // Tick is one tick of a recording, before the common checks.
 type Tick struct {
@@ -84,6 +149,42 @@ type Options struct {
 }
 
 // Assemble reads the recording and calls fn for every tick in order.
+// It reads the recording once, in time order; the memory it holds beyond
+// mcapread's sort buffer is, per source, the messages within max_age of the
+// pending tick.
 func Assemble(ctx context.Context, src mcapread.Source, id Identity, cfg *pipeline.Config, opts Options, fn func(*Tick) error) (Stats, error) {
-	return Stats{}, errors.New("recording: not implemented")
+	if id.Skip != "" {
+		return Stats{}, fmt.Errorf("assemble: recording skipped as %s", id.Skip)
+	}
+	emb := cfg.Embodiments[id.Embodiment]
+	if emb == nil || emb.Frames == nil {
+		return Stats{}, fmt.Errorf("assemble: embodiment %q has no frames", id.Embodiment)
+	}
+	a, err := newAligner(emb, fn)
+	if err != nil {
+		return Stats{}, fmt.Errorf("assemble %s: %w", id.Embodiment, err)
+	}
+	ro := mcapread.Options{
+		UsePublishTime:  cfg.Recordings != nil && cfg.Recordings.Time == "publish_time",
+		Topics:          a.wants,
+		SortBufferBytes: opts.SortBufferBytes,
+		ScratchDir:      opts.ScratchDir,
+	}
+	if opts.Tap != nil {
+		ro.Tap = opts.Tap
+	}
+	res, err := mcapread.ReadOrdered(ctx, src, ro, func(m *mcapread.Message) error {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		return a.add(m)
+	})
+	a.stats.Incomplete = res.Incomplete
+	if err != nil {
+		return a.stats, fmt.Errorf("assemble: %w", err)
+	}
+	if err := a.flush(0, true); err != nil {
+		return a.stats, err
+	}
+	return a.stats, nil
 }
