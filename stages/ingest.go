@@ -37,22 +37,32 @@ type ingestEmbodiment struct {
 	ActLow  []float64 `json:"act_low"`
 	ActHigh []float64 `json:"act_high"`
 	Cameras []string  `json:"cameras"`
+	// Frames is how a recording's topics become frames (SPEC §7.3); absent
+	// for an embodiment fed by JSON Lines only, so its key is unchanged.
+	Frames *pipeline.FramesConfig `json:"frames,omitempty"`
 }
 
-// Reads implements pipeline.Stage: what decides which lines are kept, how
-// values are rounded and how frames are spread over partitions.
+// Reads implements pipeline.Stage: what decides which lines and ticks are
+// kept, how values are rounded and how frames are spread over partitions.
 func (Ingest) Reads(cfg *pipeline.Config) any {
 	embs := map[string]ingestEmbodiment{}
 	for name, e := range cfg.Embodiments {
-		embs[name] = ingestEmbodiment{e.Obs, e.Act, e.ObsLow, e.ObsHigh, e.ActLow, e.ActHigh, e.Cameras}
+		embs[name] = ingestEmbodiment{e.Obs, e.Act, e.ObsLow, e.ObsHigh, e.ActLow, e.ActHigh, e.Cameras, e.Frames}
 	}
-	return map[string]any{
+	reads := map[string]any{
 		"max_line_bytes": cfg.Source.MaxLineBytes,
 		"embodiments":    embs,
 		"float":          cfg.Float,
 		"partitions":     cfg.Partitions,
 		"quarantine":     cfg.Quarantine,
 	}
+	// How recordings name their unit and embodiment and which time they
+	// use decide their ticks (SPEC §7.1); left out when unset, so a config
+	// without recordings keeps its keys.
+	if cfg.Recordings != nil {
+		reads["recordings"] = cfg.Recordings
+	}
+	return reads
 }
 
 // Items implements pipeline.Stage: one item per selected object, keyed by the
