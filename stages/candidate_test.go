@@ -14,6 +14,10 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/aws/aws-sdk-go-v2/aws"
+	"github.com/aws/aws-sdk-go-v2/service/s3"
+
+	"hindcast/internal/s3test"
 	"hindcast/pipeline"
 	"hindcast/schemas"
 	"hindcast/stages/recording"
@@ -109,30 +113,51 @@ func (r fakeRecording) bytes(t *testing.T) []byte {
 type fakeTicks struct{}
 
 func readFake(ctx context.Context, src mcapread.Source, tap io.Writer) (fakeRecording, error) {
+	r, _, err := readFakeRaw(ctx, src, tap)
+	return r, err
+}
+
+func readFakeRaw(ctx context.Context, src mcapread.Source, tap io.Writer) (fakeRecording, []byte, error) {
 	var r fakeRecording
 	rc, err := src.Open(ctx, 0)
 	if err != nil {
-		return r, err
+		return r, nil, err
 	}
 	defer rc.Close()
 	b, err := io.ReadAll(rc)
 	if err != nil {
-		return r, err
+		return r, nil, err
 	}
 	if int64(len(b)) != src.Size() {
-		return r, fmt.Errorf("read %d bytes of %d", len(b), src.Size())
+		return r, nil, fmt.Errorf("read %d bytes of %d", len(b), src.Size())
 	}
 	if tap != nil {
 		tap.Write(b)
 	}
 	err = json.Unmarshal(b[len(mcapread.Magic):], &r)
-	return r, err
+	return r, b, err
 }
 
 func (fakeTicks) identify(ctx context.Context, src mcapread.Source, key string, cfg *pipeline.Config) (recording.Identity, error) {
-	r, err := readFake(ctx, src, nil)
+	r, raw, err := readFakeRaw(ctx, src, nil)
 	if err != nil {
 		return recording.Identity{}, err
+	}
+	// A ranged read of the tail, as a reader of an MCAP index does (the
+	// summary is at the end of the file): it must give the object's last
+	// bytes.
+	const n = 16
+	rc, err := src.Open(ctx, src.Size()-n)
+	if err != nil {
+		return recording.Identity{}, err
+	}
+	tail, err := io.ReadAll(rc)
+	rc.Close()
+	if err != nil {
+		return recording.Identity{}, err
+	}
+	if !bytes.Equal(tail, raw[len(raw)-n:]) {
+		return recording.Identity{}, fmt.Errorf("%s: a read from offset %d gave %q, not the object's last %d bytes", key, src.Size()-n, tail, n)
 	}
 	return recording.Identity{Unit: r.Unit, Embodiment: r.Embodiment, Skip: r.Skip}, nil
 }
@@ -161,8 +186,14 @@ func runWithTicks(t *testing.T, ts tickSource, cfgYAML string, files map[string]
 	t.Helper()
 	dir := t.TempDir()
 	writeTree(t, filepath.Join(dir, "src"), files)
+	return runWithTicksAt(t, ts, dir, withLocations(t, cfgYAML, "src", "work", "out"))
+}
+
+// runWithTicksAt runs the config text (its locations set) from dir.
+func runWithTicksAt(t *testing.T, ts tickSource, dir string, cfgText []byte) (*pipeline.Manifest, []schemas.Dropped) {
+	t.Helper()
 	cfgPath := filepath.Join(dir, "hindcast.yaml")
-	if err := os.WriteFile(cfgPath, withLocations(t, cfgYAML, "src", "work", "out"), 0o644); err != nil {
+	if err := os.WriteFile(cfgPath, cfgText, 0o644); err != nil {
 		t.Fatal(err)
 	}
 	cfg, err := pipeline.LoadConfig(cfgPath)
@@ -199,12 +230,10 @@ func runWithTicks(t *testing.T, ts tickSource, cfgYAML string, files map[string]
 	return m, dropped
 }
 
-// TestIngestRecordingSeam runs a mixed corpus (JSON Lines and recordings
-// of one unit) through the pipeline with a fake tick source: one recording
-// per reason of SPEC §7.4 and per skip of §7.1, a duplicate recording and
-// an incomplete one, with exact counts per source, in the funnel and in
-// the quarantine.
-func TestIngestRecordingSeam(t *testing.T) {
+// seamCorpus is a mixed corpus (JSON Lines and recordings of one unit) for
+// a fake tick source: one recording per reason of SPEC §7.4 and per skip
+// of §7.1, a duplicate recording and an incomplete one.
+func seamCorpus(t *testing.T) (files map[string][]byte, cfg string, a, b, c fakeRecording) {
 	png := ingestFixture(t, "frames/ok.png")
 	ms := int64(1_000_000)
 	ok := func(i int64) fakeTick {
@@ -213,7 +242,7 @@ func TestIngestRecordingSeam(t *testing.T) {
 	// rec/a.mcap: 10 ticks at 1…10 ms: 6 kept, 2 stale (one per topic), 1
 	// malformed, 1 dim_mismatch from interpolation. It starts an episode
 	// and the JSON Lines log below continues it.
-	a := fakeRecording{Unit: "u1", Embodiment: "arm",
+	a = fakeRecording{Unit: "u1", Embodiment: "arm",
 		Messages: map[string]int64{"/joints": 40, "/cmd": 20}, Undecodable: map[string]int64{"/cmd": 3}}
 	for i := int64(1); i <= 10; i++ {
 		tk := ok(i)
@@ -234,7 +263,7 @@ func TestIngestRecordingSeam(t *testing.T) {
 	// rec/b.mcap: the common checks over ticks: 5 ticks at 20…24 ms, one
 	// each of dim_mismatch (obs length), non_finite, out_of_range, 2 kept;
 	// the recording is incomplete.
-	b := fakeRecording{Unit: "u1", Embodiment: "arm", Incomplete: true,
+	b = fakeRecording{Unit: "u1", Embodiment: "arm", Incomplete: true,
 		Messages: map[string]int64{"/joints": 5}, Undecodable: map[string]int64{}}
 	for i := int64(20); i <= 24; i++ {
 		tk := ok(i)
@@ -250,7 +279,7 @@ func TestIngestRecordingSeam(t *testing.T) {
 	}
 	// rec/c.mcap: a camera embodiment: 4 ticks, one image_corrupt, 3 kept
 	// (with the task set on the last).
-	c := fakeRecording{Unit: "u2", Embodiment: "cam", Messages: map[string]int64{"/front": 4}, Undecodable: map[string]int64{}}
+	c = fakeRecording{Unit: "u2", Embodiment: "cam", Messages: map[string]int64{"/front": 4}, Undecodable: map[string]int64{}}
 	for i := int64(1); i <= 4; i++ {
 		tk := fakeTick{T: i * ms, Obs: []float64{1, 2, 3}, Img: [][]byte{png}}
 		if i == 2 {
@@ -261,7 +290,7 @@ func TestIngestRecordingSeam(t *testing.T) {
 		}
 		c.Ticks = append(c.Ticks, tk)
 	}
-	files := map[string][]byte{
+	files = map[string][]byte{
 		"rec/a.mcap": a.bytes(t),
 		// Found by its magic bytes, not its name.
 		"rec/b.log":       b.bytes(t),
@@ -275,7 +304,7 @@ func TestIngestRecordingSeam(t *testing.T) {
 		"rec/u1.jsonl": jsonLines(armLine("u1", 11*ms, ""), armLine("u1", 12*ms, ""), `{"unit":`,
 			armLine("u1", 13*ms, ""), armLine("u1", 14*ms, "")),
 	}
-	cfg := `
+	cfg = `
 dataset: seam
 partitions: 2
 quarantine: true
@@ -286,6 +315,14 @@ embodiments:
 episodes: {max_gap: 1s, min_steps: 2, max_steps: 100}
 goals: {future: 1, geometric: 0, final: 0, negative: 0}
 `
+	return files, cfg, a, b, c
+}
+
+// TestIngestRecordingSeam runs seamCorpus through the pipeline with a fake
+// tick source and checks exact counts per source, in the funnel and in the
+// quarantine.
+func TestIngestRecordingSeam(t *testing.T) {
+	files, cfg, a, b, c := seamCorpus(t)
 	m, quarantined := runWithTicks(t, fakeTicks{}, cfg, files)
 
 	wantSource(t, m, "rec/a.mcap", 10, 5, map[string]int64{pipeline.Stale: 3, pipeline.Malformed: 1, pipeline.DimMismatch: 1})
@@ -421,4 +458,66 @@ func TestIngestKeyCoversRecordings(t *testing.T) {
 	if _, ok := (Ingest{}).Reads(base).(map[string]any)["recordings"]; ok {
 		t.Errorf("a config without recordings puts recordings in the ingest key")
 	}
+}
+
+// TestIngestRecordingSeamOnS3 runs seamCorpus from a bucket (a real S3
+// server on 127.0.0.1, versitygw): recordings are read through ranged
+// reads of the store, and the run gives the local run's digest and counts.
+func TestIngestRecordingSeamOnS3(t *testing.T) {
+	const bucket = "hc-seam"
+	srv := s3test.Start(t, bucket)
+	none := filepath.Join(t.TempDir(), "none")
+	for k, v := range map[string]string{
+		"AWS_ACCESS_KEY_ID": srv.AccessKey, "AWS_SECRET_ACCESS_KEY": srv.SecretKey, "AWS_REGION": srv.Region,
+		"AWS_SESSION_TOKEN": "", "AWS_PROFILE": "", "AWS_ENDPOINT_URL": "", "AWS_ENDPOINT_URL_S3": "",
+		"AWS_EC2_METADATA_DISABLED": "true", "AWS_CONFIG_FILE": none, "AWS_SHARED_CREDENTIALS_FILE": none,
+	} {
+		t.Setenv(k, v)
+	}
+	files, cfg, _, _, _ := seamCorpus(t)
+	local, qLocal := runWithTicks(t, fakeTicks{}, cfg, files)
+
+	client := srv.Client()
+	for _, k := range slices.Sorted(maps.Keys(files)) {
+		_, err := client.PutObject(context.Background(), &s3.PutObjectInput{
+			Bucket: aws.String(bucket), Key: aws.String("src/" + k), Body: bytes.NewReader(files[k])})
+		if err != nil {
+			t.Fatalf("upload %s: %v", k, err)
+		}
+	}
+	text := withLocations(t, cfg, "s3://"+bucket+"/src/", "work", "out")
+	text = append(text, []byte("storage:\n  endpoint: "+srv.Endpoint+"\n")...)
+	remote, qRemote := runWithTicksAt(t, fakeTicks{}, t.TempDir(), text)
+
+	if local.Digest != remote.Digest {
+		t.Errorf("digest local %s, on S3 %s", local.Digest, remote.Digest)
+	}
+	if a, b := mustJSON(t, local.Funnel), mustJSON(t, remote.Funnel); a != b {
+		t.Errorf("funnel local %s\non S3 %s", a, b)
+	}
+	if len(local.Sources) != len(remote.Sources) {
+		t.Fatalf("%d sources local, %d on S3", len(local.Sources), len(remote.Sources))
+	}
+	for i := range local.Sources {
+		a, b := local.Sources[i], remote.Sources[i]
+		if b.ETag == "" {
+			t.Errorf("%s: no etag on S3", b.Key)
+		}
+		a.URI, a.ETag, a.VersionID, b.URI, b.ETag, b.VersionID = "", "", "", "", "", ""
+		if x, y := mustJSON(t, a), mustJSON(t, b); x != y {
+			t.Errorf("source local %s\non S3 %s", x, y)
+		}
+	}
+	if len(qLocal) != len(qRemote) || len(qLocal) == 0 {
+		t.Errorf("%d quarantined local, %d on S3", len(qLocal), len(qRemote))
+	}
+}
+
+func mustJSON(t *testing.T, v any) string {
+	t.Helper()
+	b, err := json.Marshal(v)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return string(b)
 }
