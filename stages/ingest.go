@@ -181,7 +181,12 @@ func (in *ingester) run(ctx context.Context) error {
 	if err != nil {
 		return err
 	}
-	defer rc.Close()
+	open := true
+	defer func() {
+		if open {
+			rc.Close()
+		}
+	}()
 	if v, ok := rc.(interface{ VersionID() string }); ok && v.VersionID() != "" {
 		in.sum.Version = v.VersionID()
 	}
@@ -197,12 +202,16 @@ func (in *ingester) run(ctx context.Context) error {
 	raw := bufio.NewReaderSize(src, 256<<10)
 	// What the object is, by its first bytes, never by its name (SPEC §7.1).
 	if magic, _ := raw.Peek(len(mcapread.Magic)); bytes.Equal(magic, mcapread.Magic[:]) {
+		// A recording is read by ranged reads of its own (its index is at
+		// the end); this stream is not needed.
+		open = false
+		rc.Close()
 		return in.recording(ctx)
 	}
 	if src.err != nil {
 		return src.err
 	}
-	in.startChecks(in.lineFetcher().fetch)
+	in.startChecks((&imageFetcher{env: in.env}).fetch)
 	body, err := decompress(raw)
 	if err != nil {
 		if src.err != nil {
@@ -239,8 +248,6 @@ func (in *ingester) run(ctx context.Context) error {
 	in.sum.SHA256 = hex.EncodeToString(src.h.Sum(nil))
 	return in.flush(ctx)
 }
-
-func (in *ingester) lineFetcher() *imageFetcher { return &imageFetcher{env: in.env} }
 
 // startChecks readies the checks for this object's candidates.
 func (in *ingester) startChecks(fetch func(ctx context.Context, ref string) ([]byte, error)) {
