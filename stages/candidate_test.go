@@ -16,6 +16,7 @@ import (
 
 	"github.com/aws/aws-sdk-go-v2/aws"
 	"github.com/aws/aws-sdk-go-v2/service/s3"
+	"github.com/santhosh-tekuri/jsonschema/v6"
 
 	"hindcast/internal/s3test"
 	"hindcast/pipeline"
@@ -207,7 +208,8 @@ func runWithTicksAt(t *testing.T, ts tickSource, dir string, cfgText []byte) (*p
 		}
 	}
 	ctx := context.Background()
-	m, err := pipeline.Execute(ctx, cfg, sts, pipeline.Options{Version: "v1", Parallel: 2})
+	m, err := pipeline.Execute(ctx, cfg, sts, pipeline.Options{Version: "v1", Parallel: 2,
+		Tool: pipeline.ToolInfo{Version: pipeline.ToolVersion, Commit: "unknown"}})
 	if err != nil {
 		t.Fatalf("run pipeline: %v", err)
 	}
@@ -378,6 +380,10 @@ func TestIngestRecordingSeam(t *testing.T) {
 		Dropped: map[string]int64{pipeline.Stale: 3, pipeline.Malformed: 2, pipeline.DimMismatch: 2,
 			pipeline.NonFinite: 1, pipeline.OutOfRange: 1, pipeline.ImageCorrupt: 1}}
 	wantFunnel(t, m, want)
+
+	// The manifest, recording entries and skips included, matches its JSON
+	// Schema (draft 2020-12, validated by santhosh-tekuri/jsonschema).
+	validateManifest(t, m)
 
 	// The quarantine keeps the recording's key, the tick's index and, for
 	// a stale tick, the topic.
@@ -574,5 +580,34 @@ func TestStoreSourceRangedReads(t *testing.T) {
 	changed := storeSource{store: etagStore{pipeline.NewLocalStore(dir), `"v2"`}, obj: obj, uri: "file:///r.mcap"}
 	if _, err := changed.Open(ctx, 4); err == nil || !strings.Contains(err.Error(), "changed since it was listed") {
 		t.Errorf("a read of another version: %v, want an error saying the object changed", err)
+	}
+}
+
+// validateManifest checks a manifest against schemas.ManifestSchema.
+func validateManifest(t *testing.T, m *pipeline.Manifest) {
+	t.Helper()
+	raw, err := json.Marshal(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	doc, err := jsonschema.UnmarshalJSON(bytes.NewReader(schemas.ManifestSchema()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	c := jsonschema.NewCompiler()
+	c.AssertFormat()
+	if err := c.AddResource("manifest.schema.json", doc); err != nil {
+		t.Fatal(err)
+	}
+	sch, err := c.Compile("manifest.schema.json")
+	if err != nil {
+		t.Fatal(err)
+	}
+	inst, err := jsonschema.UnmarshalJSON(bytes.NewReader(raw))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := sch.Validate(inst); err != nil {
+		t.Errorf("the manifest does not match its schema: %v", err)
 	}
 }
