@@ -209,6 +209,9 @@ type recWant struct {
 	dropped     map[string]int64
 	staleBy     map[string]int64
 	skipped     string
+	// messages counts the decodable messages per topic (SPEC §7.6); nil
+	// means 20 joints and 20 commands (armMessages).
+	messages map[string]int64
 }
 
 // recCorpus writes the fixtures under dir/src and returns what each source
@@ -278,13 +281,16 @@ func recCorpus(t *testing.T, dir string) map[string]recWant {
 	}
 	one := func(reason string) map[string]int64 { return map[string]int64{reason: 1} }
 	return map[string]recWant{
-		"rec/ok.mcap":          {lines: 10, kept: 10},
-		"rec/stale.mcap":       {lines: 10, kept: 8, dropped: map[string]int64{pipeline.Stale: 2}, staleBy: map[string]int64{"/arm/joints": 2}},
-		"rec/malformed.mcap":   {lines: 10, kept: 9, dropped: one(pipeline.Malformed)},
-		"rec/dim.mcap":         {lines: 10, kept: 9, dropped: one(pipeline.DimMismatch)},
-		"rec/nan.mcap":         {lines: 10, kept: 9, dropped: one(pipeline.NonFinite)},
-		"rec/range.mcap":       {lines: 10, kept: 9, dropped: one(pipeline.OutOfRange)},
-		"rec/cam.mcap":         {lines: 10, kept: 9, dropped: one(pipeline.ImageCorrupt)},
+		"rec/ok.mcap": {lines: 10, kept: 10},
+		// Joints at 0…300 (7) and 650…950 (7).
+		"rec/stale.mcap": {lines: 10, kept: 8, dropped: map[string]int64{pipeline.Stale: 2}, staleBy: map[string]int64{"/arm/joints": 2},
+			messages: map[string]int64{"/arm/joints": 14, "/arm/cmd": 20}},
+		"rec/malformed.mcap": {lines: 10, kept: 9, dropped: one(pipeline.Malformed)},
+		"rec/dim.mcap":       {lines: 10, kept: 9, dropped: one(pipeline.DimMismatch)},
+		"rec/nan.mcap":       {lines: 10, kept: 9, dropped: one(pipeline.NonFinite)},
+		"rec/range.mcap":     {lines: 10, kept: 9, dropped: one(pipeline.OutOfRange)},
+		"rec/cam.mcap": {lines: 10, kept: 9, dropped: one(pipeline.ImageCorrupt),
+			messages: map[string]int64{"/arm/joints": 20, "/wrist/image": 20}},
 		"rec/skip-nounit.mcap": {skipped: pipeline.SkipNoUnit},
 		"rec/skip-emb.mcap":    {skipped: pipeline.SkipUnknownEmbodiment},
 		"rec/skip-bad.mcap":    {skipped: pipeline.SkipUnreadable},
@@ -341,11 +347,14 @@ func TestRecordingsEndToEnd(t *testing.T) {
 			if r.Ticks != s.Lines || !maps.Equal(r.StaleBy, nonNil(w.staleBy)) {
 				t.Errorf("%s: ticks %d stale_by %v; want %d, %v", s.Key, r.Ticks, r.StaleBy, s.Lines, w.staleBy)
 			}
-			// Frame topics read whole: 20 messages each.
-			for _, topic := range []string{"/arm/joints"} {
-				if n := r.Messages[topic]; n == 0 {
-					t.Errorf("%s: no decodable %s message counted", s.Key, topic)
-				}
+			// Every message decodes (a command without velocity is JSON
+			// that decodes, lacking a field: malformed, not undecodable).
+			msgs := w.messages
+			if msgs == nil {
+				msgs = map[string]int64{"/arm/joints": 20, "/arm/cmd": 20}
+			}
+			if !maps.Equal(r.Messages, msgs) || len(r.Undecodable) != 0 {
+				t.Errorf("%s: messages %v undecodable %v; want %v and none", s.Key, r.Messages, r.Undecodable, msgs)
 			}
 		}
 	}
