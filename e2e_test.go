@@ -39,6 +39,7 @@ import (
 	pqschema "github.com/apache/arrow-go/v18/parquet/schema"
 	"github.com/santhosh-tekuri/jsonschema/v6"
 
+	"hindcast/pipeline"
 	"hindcast/schemas"
 )
 
@@ -1179,10 +1180,18 @@ func findVersion(t *testing.T, datasetDir string) string {
 	return filepath.Join(datasetDir, ents[0].Name())
 }
 
-// allReasons is every drop reason of SPEC §3.1 (in check order) and §3.2.
-var allReasons = []string{"oversize", "truncated", "malformed", "unknown_embodiment", "dim_mismatch",
-	"non_finite", "out_of_range", "image_missing", "image_corrupt", "time_regress",
-	"duplicate", "conflict", "short_episode"}
+// lineReasons lists the reasons that can drop a JSON Lines line (SPEC
+// §3.1 and §3.2), from the one list of reasons: the demo's logs hold every
+// one of them.
+func lineReasons() []string {
+	var out []string
+	for _, d := range pipeline.ReasonDefs() {
+		if d.Lines {
+			out = append(out, d.Name)
+		}
+	}
+	return out
+}
 
 func TestDemo(t *testing.T) {
 	dir := t.TempDir()
@@ -1197,7 +1206,7 @@ func TestDemo(t *testing.T) {
 			n, _ := strconv.Atoi(mm[2])
 			got[mm[1]] = n
 		}
-		for _, r := range allReasons {
+		for _, r := range lineReasons() {
 			if got[r] == 0 {
 				t.Errorf("summary shows %s with count %d, want > 0\n%s", r, got[r], out)
 			}
@@ -1216,6 +1225,7 @@ func TestDemo(t *testing.T) {
 		// SPEC §5: lines = frames + Σ dropped; per source lines = kept + Σ dropped.
 		var dropped, kept, lines int64
 		perReason := map[string]int64{}
+		allReasons := pipeline.Reasons()
 		for _, r := range allReasons {
 			dropped += m.Funnel.Dropped[r]
 		}

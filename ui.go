@@ -159,6 +159,19 @@ func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
 	if incomplete > 0 {
 		fmt.Fprintf(w, "incomplete objects: %d\n", incomplete)
 	}
+	// Recordings skipped whole (SPEC §7.1): no lines, so the funnel alone
+	// would not show them.
+	var skipped int64
+	var why []string
+	for _, r := range pipeline.SkipReasons() {
+		if n := f.SkippedObjects[r]; n > 0 {
+			skipped += n
+			why = append(why, fmt.Sprintf("%s %d", r, n))
+		}
+	}
+	if skipped > 0 {
+		fmt.Fprintf(w, "skipped recordings: %d (%s)\n", skipped, strings.Join(why, ", "))
+	}
 	fmt.Fprintf(w, "episodes  %d   pairs %d\n", f.Episodes, f.Pairs)
 	fmt.Fprintf(w, "  %-14s %-6s %9s %10s %11s\n", "embodiment", "split", "episodes", "frames", "pairs")
 	for _, c := range m.Counts {

@@ -24,8 +24,11 @@ type DiffResult struct {
 	Config     []DiffConfig `json:"config"`
 	Sources    DiffSources  `json:"sources"`
 	Dropped    []DiffReason `json:"dropped"`
-	Splits     []DiffSplit  `json:"splits"`
-	Files      DiffFiles    `json:"files"`
+	// Skipped lists the skip reasons of recordings (SPEC §7.1) whose
+	// counts differ.
+	Skipped []DiffReason `json:"skipped,omitempty"`
+	Splits  []DiffSplit  `json:"splits"`
+	Files   DiffFiles    `json:"files"`
 }
 
 // DiffSide names one of the two versions.
@@ -94,7 +97,7 @@ type DiffDelta struct {
 // Empty reports that nothing but names and places differs.
 func (r *DiffResult) Empty() bool {
 	return len(r.Config) == 0 && len(r.Sources.Added)+len(r.Sources.Removed)+len(r.Sources.Changed) == 0 &&
-		len(r.Dropped) == 0 && len(r.Splits) == 0 &&
+		len(r.Dropped) == 0 && len(r.Skipped) == 0 && len(r.Splits) == 0 &&
 		len(r.Files.Added)+len(r.Files.Removed)+len(r.Files.Changed) == 0
 }
 
@@ -137,6 +140,13 @@ func Diff(a, b *pipeline.Version) *DiffResult {
 		na, nb := ma.Funnel.Dropped[reason], mb.Funnel.Dropped[reason]
 		if na != nb {
 			r.Dropped = append(r.Dropped, DiffReason{Reason: reason, A: na, B: nb, Delta: nb - na})
+		}
+	}
+
+	for _, reason := range pipeline.SkipReasons() {
+		na, nb := ma.Funnel.SkippedObjects[reason], mb.Funnel.SkippedObjects[reason]
+		if na != nb {
+			r.Skipped = append(r.Skipped, DiffReason{Reason: reason, A: na, B: nb, Delta: nb - na})
 		}
 	}
 
@@ -339,6 +349,15 @@ func (r *DiffResult) WriteText(w io.Writer) error {
 	if len(r.Dropped) > 0 {
 		rows := [][]string{}
 		for _, d := range r.Dropped {
+			rows = append(rows, []string{d.Reason, fmt.Sprint(d.A), fmt.Sprint(d.B), dfSigned(d.Delta)})
+		}
+		p.table(1, []string{"reason", "a", "b", "delta"}, rows)
+	}
+
+	if len(r.Skipped) > 0 {
+		p.printf("\nskipped recordings: %s\n", dfDiffer(len(r.Skipped), "reason"))
+		rows := [][]string{}
+		for _, d := range r.Skipped {
 			rows = append(rows, []string{d.Reason, fmt.Sprint(d.A), fmt.Sprint(d.B), dfSigned(d.Delta)})
 		}
 		p.table(1, []string{"reason", "a", "b", "delta"}, rows)

@@ -258,10 +258,10 @@ func TestShowCounts(t *testing.T) {
 		t.Errorf("sources %+v, want %+v", r.Sources, wantSrc)
 	}
 
-	// Funnel: the 13 reasons of SPEC §3.1–§3.2 in check order; see vfFleet.
+	// Funnel: every reason in the order of the one list (pipeline.Reasons);
+	// see vfFleet.
 	drops := map[string]int64{"malformed": 1, "non_finite": 1, "unknown_embodiment": 1, "time_regress": 1, "short_episode": 1}
-	order := []string{"oversize", "truncated", "malformed", "unknown_embodiment", "dim_mismatch", "non_finite",
-		"out_of_range", "image_missing", "image_corrupt", "time_regress", "duplicate", "conflict", "short_episode"}
+	order := pipeline.Reasons()
 	var reasons []ShowReason
 	for _, name := range order {
 		reasons = append(reasons, ShowReason{Reason: name, Count: drops[name], Share: float64(drops[name]) / 30})
@@ -443,9 +443,7 @@ func TestShowHandMade(t *testing.T) {
 			t.Errorf("reason %s: %d, want %d", x.Reason, x.Count, want)
 		}
 	}
-	wantNames := []string{"oversize", "truncated", "malformed", "unknown_embodiment", "dim_mismatch", "non_finite",
-		"out_of_range", "image_missing", "image_corrupt", "time_regress", "duplicate", "conflict", "short_episode",
-		"another", "mystery"}
+	wantNames := append(pipeline.Reasons(), "another", "mystery")
 	if !slices.Equal(names, wantNames) {
 		t.Errorf("reasons %q, want %q", names, wantNames)
 	}

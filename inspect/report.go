@@ -57,6 +57,7 @@ func Report(v *pipeline.Version, w io.Writer) error {
 		p.EpisodePlots = append(p.EpisodePlots, svg)
 	}
 	p.DropPlots = append(p.DropPlots, rpDropsBySource(m), rpDropsByUnit(m))
+	p.Recordings, p.StaleTopics = rpRecordings(m)
 
 	offsets := map[string]map[int]int64{}
 	reached := map[string]map[int]int64{}
@@ -117,6 +118,11 @@ type rpPage struct {
 	GoalPlots    []template.HTML
 	Negative     string
 	StatPlots    []template.HTML
+	// Recordings holds one row per recording (key, unit, embodiment,
+	// ticks, kept, drops) and StaleTopics the stale ticks per topic, when
+	// the version has recordings.
+	Recordings  [][6]string
+	StaleTopics []rpKV
 }
 
 type rpKV struct{ K, V string }
@@ -335,6 +341,30 @@ const (
 	rpMaxBars = 30
 )
 
+// rpRecordings gives the report's recording rows: ticks and drops per
+// recording (or why it was skipped), and stale ticks per topic.
+func rpRecordings(m *pipeline.Manifest) (rows [][6]string, stale []rpKV) {
+	r := recordingsOf(m)
+	if r == nil {
+		return nil, nil
+	}
+	for _, x := range r.Recordings {
+		if x.Skipped != "" {
+			rows = append(rows, [6]string{x.Key, "", "", "", "", "skipped: " + x.Skipped})
+			continue
+		}
+		key := x.Key
+		if x.Incomplete {
+			key += " (incomplete)"
+		}
+		rows = append(rows, [6]string{key, x.Unit, x.Embodiment, rpInt(x.Ticks), rpInt(x.Kept), countsText(x.Dropped, rpReasonOrder(x.Dropped))})
+	}
+	for _, topic := range rpSortedKeys(r.StaleBy) {
+		stale = append(stale, rpKV{topic, rpInt(r.StaleBy[topic])})
+	}
+	return rows, stale
+}
+
 // rpReasonColor gives each drop reason of SPEC §3.1/§3.2 one colour in
 // every plot (a Tableau-style categorical palette); unknown names are grey.
 func rpReasonColor(r string) string {
@@ -343,6 +373,8 @@ func rpReasonColor(r string) string {
 		return "#4e79a7"
 	case pipeline.Truncated:
 		return "#f28e2b"
+	case pipeline.Stale:
+		return "#86bcb6"
 	case pipeline.Malformed:
 		return "#e15759"
 	case pipeline.UnknownEmbodiment:
@@ -1197,6 +1229,14 @@ var rpTemplate = template.Must(template.New("report").Parse(`<!DOCTYPE html>
 <div class="grid">{{range .DropPlots}}<figure>{{.}}</figure>
 {{end}}</div>
 
+{{if .Recordings}}<h2>Recordings</h2>
+<div class="tables">
+<table><thead><tr><th>recording</th><th>unit</th><th>embodiment</th><th>ticks</th><th>kept</th><th>dropped</th></tr></thead><tbody>
+{{range .Recordings}}<tr><td class="mono">{{index . 0}}</td><td>{{index . 1}}</td><td>{{index . 2}}</td><td class="n">{{index . 3}}</td><td class="n">{{index . 4}}</td><td>{{index . 5}}</td></tr>
+{{end}}</tbody></table>
+{{if .StaleTopics}}<table><thead><tr><th>stale by topic</th><th>ticks</th></tr></thead><tbody>{{range .StaleTopics}}<tr><td class="mono">{{.K}}</td><td class="n">{{.V}}</td></tr>{{end}}</tbody></table>{{end}}
+</div>
+{{end}}
 <h2>Goals</h2>
 <div class="grid">{{range .GoalPlots}}<figure>{{.}}</figure>
 {{end}}</div>

@@ -26,10 +26,12 @@ type ShowResult struct {
 	ConfigSHA256 string            `json:"config_sha256"`
 	Digest       string            `json:"digest"`
 	Sources      ShowSources       `json:"sources"`
-	Funnel       ShowFunnel        `json:"funnel"`
-	Counts       []pipeline.Count  `json:"counts"`
-	Lengths      []ShowLengths     `json:"episode_lengths"`
-	Files        ShowFiles         `json:"files"`
+	// Recordings is set when the version read or skipped a recording.
+	Recordings *ShowRecordings  `json:"recordings,omitempty"`
+	Funnel     ShowFunnel       `json:"funnel"`
+	Counts     []pipeline.Count `json:"counts"`
+	Lengths    []ShowLengths    `json:"episode_lengths"`
+	Files      ShowFiles        `json:"files"`
 	// Notes lists manifest entries Show could not use (say, an
 	// episode_steps key that is not a number), so nothing is hidden silently.
 	Notes []string `json:"notes"`
@@ -116,6 +118,8 @@ func Show(v *pipeline.Version) *ShowResult {
 			r.Sources.IncompleteKeys = append(r.Sources.IncompleteKeys, s.Key)
 		}
 	}
+
+	r.Recordings = recordingsOf(m)
 
 	f := m.Funnel
 	r.Funnel = ShowFunnel{Lines: f.Lines, Frames: f.Frames, FramesShare: shShare(f.Frames, f.Lines),
@@ -342,6 +346,9 @@ func (r *ShowResult) WriteText(w io.Writer) error {
 	p.printf("\nsources   %s, %s, %d duplicate, %d incomplete\n", trCount(s.Objects, "object", "objects"), shBytes(s.Bytes), s.Duplicates, s.Incomplete)
 	for _, k := range s.IncompleteKeys {
 		p.printf("  incomplete %s\n", k)
+	}
+	if r.Recordings != nil {
+		r.Recordings.writeText(p)
 	}
 
 	f := r.Funnel

@@ -48,6 +48,9 @@ type TraceResult struct {
 	// Source is the queried object as the manifest records it (source
 	// queries only).
 	Source *TraceSource `json:"source,omitempty"`
+	// TickSources lists the recordings among the answer's sources, sorted:
+	// their src_line is a tick's 1-based index, not a line.
+	TickSources []string `json:"tick_sources,omitempty"`
 	// Row is the queried row (file + row queries only).
 	Row *TraceRow `json:"row,omitempty"`
 	// Files lists every shard holding rows of the answer, by path. For a
@@ -75,6 +78,11 @@ type TraceSource struct {
 	Kept        int64   `json:"kept"`
 	DuplicateOf *string `json:"duplicate_of"`
 	Incomplete  bool    `json:"incomplete"`
+	// Recording is a recording's entry (SPEC §7.6): its lines are ticks
+	// and a src_line is a tick's index. Skipped says why a recording was
+	// skipped whole.
+	Recording *pipeline.RecordingSummary `json:"recording,omitempty"`
+	Skipped   string                     `json:"skipped,omitempty"`
 }
 
 // TraceFile is one shard and the rows of it that the answer covers.
@@ -182,6 +190,7 @@ func Trace(ctx context.Context, v *pipeline.Version, q TraceQuery) (*TraceResult
 		return nil, fmt.Errorf("trace %s: %w", v.URI, err)
 	}
 	res.Cost = t.cost()
+	res.TickSources = trTickSources(v.Manifest, res)
 	sort.Slice(res.Files, func(i, j int) bool { return res.Files[i].Path < res.Files[j].Path })
 	sort.Slice(res.Episodes, func(i, j int) bool {
 		a, b := res.Episodes[i], res.Episodes[j]
@@ -316,7 +325,7 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 	}
 	key = src.Key
 	res.Source = &TraceSource{Key: src.Key, URI: src.URI, Lines: src.Lines, Kept: src.Kept,
-		DuplicateOf: src.DuplicateOf, Incomplete: src.Incomplete}
+		DuplicateOf: src.DuplicateOf, Incomplete: src.Incomplete, Recording: src.Recording, Skipped: src.Skipped}
 	if src.DuplicateOf != nil {
 		return nil // a duplicate object contributes no lines (SPEC §3.1)
 	}
@@ -1024,17 +1033,27 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 	case TraceKindSource:
 		s := r.Source
 		ew.printf("source %s (%s)\n", s.Key, s.URI)
+		lines := "lines"
+		if rec := s.Recording; rec != nil {
+			lines = "ticks"
+			ew.printf("  recording of unit %s (%s)\n", rec.Unit, rec.Embodiment)
+			if len(rec.StaleBy) > 0 {
+				ew.printf("  stale ticks by topic: %s\n", countsText(rec.StaleBy, shSortedKeys(rec.StaleBy)))
+			}
+		}
 		switch {
 		case s.DuplicateOf != nil:
 			ew.printf("  a duplicate of %s: it contributed no frames\n", *s.DuplicateOf)
+		case s.Skipped != "":
+			ew.printf("  a recording skipped as %s: it contributed no frames\n", s.Skipped)
 		case len(r.Files) == 0:
-			ew.printf("  %d lines, no frame kept in any file\n", s.Lines)
+			ew.printf("  %d %s, no frame kept in any file\n", s.Lines, lines)
 		default:
 			frames := 0
 			for _, e := range r.Episodes {
 				frames += len(e.Steps)
 			}
-			ew.printf("  %d lines, %d frames kept in %d episodes\n", s.Lines, frames, len(r.Episodes))
+			ew.printf("  %d %s, %d frames kept in %d episodes\n", s.Lines, lines, frames, len(r.Episodes))
 		}
 	case TraceKindEpisode:
 		ew.printf("episode %s\n", r.Query.Episode)
@@ -1042,10 +1061,10 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 		x := r.Row
 		ew.printf("%s row %d (row group %d)\n", x.Path, x.Row, x.RowGroup)
 		ew.printf("  episode %s step %d (unit %s)\n", x.Episode, x.Step, x.Unit)
-		ew.printf("  from %s line %d\n", x.Src, x.SrcLine)
+		ew.printf("  from %s %s %d\n", x.Src, r.lineWord(x.Src, false), x.SrcLine)
 		if g := x.Goal; g != nil {
-			ew.printf("  goal (%s): episode %s step %d, offset %d, from %s line %d\n",
-				g.Strategy, g.Episode, g.Step, g.Offset, g.Src, g.SrcLine)
+			ew.printf("  goal (%s): episode %s step %d, offset %d, from %s %s %d\n",
+				g.Strategy, g.Episode, g.Step, g.Offset, g.Src, r.lineWord(g.Src, false), g.SrcLine)
 		}
 		ew.printf("read %d of %d bytes of %d files in %d requests\n", r.Cost.Bytes, r.Cost.FileBytes, r.Cost.Files, r.Cost.Requests)
 		return ew.err
@@ -1073,15 +1092,64 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 			}
 			a, b := e.Steps[i], e.Steps[j-1]
 			if j-i == 1 {
-				ew.printf("  step %d: %s line %d\n", a.Step, a.Src, a.SrcLine)
+				ew.printf("  step %d: %s %s %d\n", a.Step, a.Src, r.lineWord(a.Src, false), a.SrcLine)
 			} else {
-				ew.printf("  steps %d-%d: %s lines %d-%d\n", a.Step, b.Step, a.Src, a.SrcLine, b.SrcLine)
+				ew.printf("  steps %d-%d: %s %s %d-%d\n", a.Step, b.Step, a.Src, r.lineWord(a.Src, true), a.SrcLine, b.SrcLine)
 			}
 			i = j
 		}
 	}
 	ew.printf("read %d of %d bytes of %d files in %d requests\n", r.Cost.Bytes, r.Cost.FileBytes, r.Cost.Files, r.Cost.Requests)
 	return ew.err
+}
+
+// lineWord names what a src_line of src counts: a line of JSON Lines, a
+// tick of a recording.
+func (r *TraceResult) lineWord(src string, many bool) string {
+	word := "line"
+	if _, ok := slices.BinarySearch(r.TickSources, src); ok {
+		word = "tick"
+	}
+	if many {
+		word += "s"
+	}
+	return word
+}
+
+// trTickSources lists the recordings among the sources an answer names.
+func trTickSources(m *pipeline.Manifest, res *TraceResult) []string {
+	recs := map[string]bool{}
+	for _, s := range m.Sources {
+		if s.Recording != nil {
+			recs[s.Key] = true
+		}
+	}
+	if len(recs) == 0 {
+		return nil
+	}
+	found := map[string]bool{}
+	if res.Source != nil && recs[res.Source.Key] {
+		found[res.Source.Key] = true
+	}
+	for _, e := range res.Episodes {
+		for _, st := range e.Steps {
+			if recs[st.Src] {
+				found[st.Src] = true
+			}
+		}
+	}
+	if x := res.Row; x != nil {
+		if recs[x.Src] {
+			found[x.Src] = true
+		}
+		if g := x.Goal; g != nil && recs[g.Src] {
+			found[g.Src] = true
+		}
+	}
+	if len(found) == 0 {
+		return nil
+	}
+	return shSortedKeys(found)
 }
 
 // trTextRanges is how many row ranges of a file the text shows: a source

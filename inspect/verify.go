@@ -376,6 +376,7 @@ func vfManifest(m *pipeline.Manifest, files map[string]bool) []VerifyProblem {
 			add("funnel", "conservation", "sources drop %d lines as %s, the funnel has no such reason", bySource[r], r)
 		}
 	}
+	vfRecordings(m, add)
 	if int64(len(m.Sources)) != f.Objects {
 		add("funnel", "conservation", "objects %d ≠ %d sources", f.Objects, len(m.Sources))
 	}

@@ -60,6 +60,11 @@ type Source struct {
 	Dropped     map[string]int64 `json:"dropped"`
 	DuplicateOf *string          `json:"duplicate_of"`
 	Incomplete  bool             `json:"incomplete"`
+	// Recording is what became of a recording's ticks (SPEC §7.6); absent
+	// for JSON Lines, for a duplicate and for a skipped recording.
+	Recording *RecordingSummary `json:"recording,omitempty"`
+	// Skipped is the reason a recording was skipped whole (SPEC §7.1).
+	Skipped string `json:"skipped,omitempty"`
 	// Files lists the frames files holding this source's kept frames (their
 	// pairs are in the pairs file of the same split and partition).
 	Files []string `json:"files"`
@@ -83,6 +88,9 @@ type Funnel struct {
 	Episodes         int64            `json:"episodes"`
 	Pairs            int64            `json:"pairs"`
 	Dropped          map[string]int64 `json:"dropped"`
+	// SkippedObjects counts the recordings skipped whole, by reason (SPEC
+	// §7.6), every reason present.
+	SkippedObjects map[string]int64 `json:"skipped_objects"`
 }
 
 // File is one shard of the version.
@@ -140,7 +148,7 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 		Created: created.UTC().Format(time.RFC3339), Tool: tool,
 		Config: cfg.CanonicalJSON(), ConfigSHA256: cfg.SHA256(), Seed: cfg.Seed,
 		SourceRoot: cfg.Source.URI, Stages: res.Stages,
-		Funnel:       Funnel{Dropped: map[string]int64{}},
+		Funnel:       Funnel{Dropped: map[string]int64{}, SkippedObjects: map[string]int64{}},
 		Stats:        map[string]EmbodimentStats{},
 		Offsets:      map[string]map[string]int64{},
 		Reached:      map[string]map[string]int64{},
@@ -156,6 +164,9 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 	}
 	for _, r := range Reasons() {
 		m.Funnel.Dropped[r] = 0
+	}
+	for _, r := range SkipReasons() {
+		m.Funnel.SkippedObjects[r] = 0
 	}
 	srcs, err := Sources(res.Sealed[StageIngest])
 	if err != nil {
@@ -198,6 +209,10 @@ func BuildManifest(cfg *Config, res *Result, version string, tool ToolInfo, crea
 			continue
 		}
 		src.Lines, src.Kept = s.Lines, s.Kept
+		src.Recording, src.Skipped = s.Recording, s.Skipped
+		if s.Skipped != "" {
+			m.Funnel.SkippedObjects[s.Skipped]++
+		}
 		for r, n := range s.Dropped {
 			src.Dropped[r] += n
 		}

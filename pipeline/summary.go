@@ -12,11 +12,15 @@ import (
 // later stage, the commit and the manifest read of an item besides its data
 // files, so each holds what those need and nothing that varies between runs.
 
-// Reason names, in the order SPEC §3.1 checks them, then the episode-stage
-// drops of §3.2.
+// Reason names. Their order, and what each applies to, is defined once, by
+// ReasonDefs; everything else that lists reasons (the funnel, the summary,
+// show, report, the quarantine, the manifest's JSON Schema, the tests)
+// derives from it or is checked against it.
 const (
-	Oversize          = "oversize"
-	Truncated         = "truncated"
+	Oversize  = "oversize"
+	Truncated = "truncated"
+	// Stale is SPEC §7.4's first reason for a recording's tick.
+	Stale             = "stale"
 	Malformed         = "malformed"
 	UnknownEmbodiment = "unknown_embodiment"
 	DimMismatch       = "dim_mismatch"
@@ -28,21 +32,81 @@ const (
 	Duplicate         = "duplicate"
 	Conflict          = "conflict"
 	ShortEpisode      = "short_episode"
-	// Stale is SPEC §7.4's first reason for a recording's tick.
-	Stale = "stale"
 )
 
-// Reasons a recording is skipped whole (SPEC §7.1), in the order they apply.
+// ReasonDef describes one drop reason: which stage decides it and which
+// input kinds it can apply to.
+type ReasonDef struct {
+	Name string
+	// Stage is StageIngest or StageEpisodes.
+	Stage string
+	// Lines: it can drop a JSON Lines line (SPEC §3.1); Ticks: a
+	// recording's tick (§7.4). Episode-stage reasons apply to both.
+	Lines, Ticks bool
+	// Rule is the SPEC section that defines it.
+	Rule string
+}
+
+// ReasonDefs lists every drop reason once, in report order: SPEC §3.1's
+// check order with §7.4's stale merged in before malformed (the one order
+// consistent with both tables), then the episode-stage drops of §3.2. Each
+// call returns a fresh slice.
+func ReasonDefs() []ReasonDef {
+	return []ReasonDef{
+		{Oversize, StageIngest, true, false, "3.1"},
+		{Truncated, StageIngest, true, false, "3.1"},
+		{Stale, StageIngest, false, true, "7.4"},
+		{Malformed, StageIngest, true, true, "3.1, 7.4"},
+		{UnknownEmbodiment, StageIngest, true, false, "3.1"},
+		{DimMismatch, StageIngest, true, true, "3.1, 7.4"},
+		{NonFinite, StageIngest, true, true, "3.1, 7.4"},
+		{OutOfRange, StageIngest, true, true, "3.1, 7.4"},
+		{ImageMissing, StageIngest, true, false, "3.1"},
+		{ImageCorrupt, StageIngest, true, true, "3.1, 7.4"},
+		{TimeRegress, StageIngest, true, false, "3.1"},
+		{Duplicate, StageEpisodes, true, true, "3.2"},
+		{Conflict, StageEpisodes, true, true, "3.2"},
+		{ShortEpisode, StageEpisodes, true, true, "3.2"},
+	}
+}
+
+// Reasons lists every drop reason in report order (the names of
+// ReasonDefs).
+func Reasons() []string {
+	defs := ReasonDefs()
+	out := make([]string, len(defs))
+	for i, d := range defs {
+		out[i] = d.Name
+	}
+	return out
+}
+
+// Reasons a recording is skipped whole (SPEC §7.1).
 const (
 	SkipUnreadable        = "unreadable"
 	SkipNoUnit            = "no_unit"
 	SkipUnknownEmbodiment = "unknown_embodiment"
 )
 
-// Reasons lists every drop reason in report order.
-func Reasons() []string {
-	return []string{Oversize, Truncated, Malformed, UnknownEmbodiment, DimMismatch, NonFinite,
-		OutOfRange, ImageMissing, ImageCorrupt, TimeRegress, Duplicate, Conflict, ShortEpisode}
+// SkipReasons lists the skip reasons in the order they apply (SPEC §7.1):
+// the first that applies is a skipped recording's reason.
+func SkipReasons() []string {
+	return []string{SkipUnreadable, SkipNoUnit, SkipUnknownEmbodiment}
+}
+
+// RecordingSummary is what ingest learned of one recording (SPEC §7.6).
+type RecordingSummary struct {
+	Unit       string `json:"unit"`
+	Embodiment string `json:"embodiment"`
+	Ticks      int64  `json:"ticks"`
+	// Messages counts decodable messages read per topic (frame, events,
+	// task and success topics); Undecodable the others.
+	Messages    map[string]int64 `json:"messages"`
+	Undecodable map[string]int64 `json:"undecodable"`
+	// StaleBy counts the stale ticks per topic: the first stale source's
+	// topic in frames order (obs, act, cameras). Beyond SPEC: "stale" alone
+	// does not tell an operator which sensor stopped.
+	StaleBy map[string]int64 `json:"stale_by"`
 }
 
 // IngestSummary seals one ingested object.
@@ -62,6 +126,11 @@ type IngestSummary struct {
 	// Quarantine is the work key of this object's dropped lines, when the
 	// config asks for a quarantine and a line was dropped.
 	Quarantine string `json:"quarantine,omitempty"`
+	// Recording is set for a recording that was read (SPEC §7.6); Skipped
+	// names the reason a recording was skipped whole (§7.1). Both are
+	// absent for JSON Lines.
+	Recording *RecordingSummary `json:"recording,omitempty"`
+	Skipped   string            `json:"skipped,omitempty"`
 	// Runs lists, per partition (five-digit name), the work keys of the
 	// sorted runs holding this object's accepted frames.
 	Runs map[string][]string `json:"runs"`

@@ -3,6 +3,7 @@ package schemas_test
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"errors"
 	"os"
 	"path/filepath"
@@ -213,6 +214,56 @@ func TestManifestSchemaOnDemoManifest(t *testing.T) {
 			}
 		})
 	}
+
+	// A config with recordings (SPEC §7.1) and an embodiment's frames
+	// (§7.3), as the Go config types write them, validates; a wrong align,
+	// both rate and clock, or an unknown time does not.
+	t.Run("recordings config", func(t *testing.T) {
+		toAny := func(v any) any {
+			b, err := json.Marshal(v)
+			if err != nil {
+				t.Fatal(err)
+			}
+			x, err := jsonschema.UnmarshalJSON(bytes.NewReader(b))
+			if err != nil {
+				t.Fatal(err)
+			}
+			return x
+		}
+		age := pipeline.Duration(150 * time.Millisecond)
+		rec := &pipeline.RecordingsConfig{Unit: pipeline.IdentityRule{Metadata: "robot", Key: "unit"},
+			Embodiment: pipeline.IdentityRule{Path: `^fleet/([^/]+)/`}, Time: "log_time"}
+		frames := &pipeline.FramesConfig{Rate: 10, MaxAge: age,
+			Obs:     []pipeline.FieldSource{{Topic: "/arm/joints", Field: "position", Align: pipeline.AlignHold, MaxAge: age}},
+			Act:     []pipeline.FieldSource{{Topic: "/arm/cmd", Field: "velocity", Align: pipeline.AlignNext, MaxAge: age}},
+			Cameras: map[string]pipeline.FieldSource{"wrist": {Topic: "/wrist/image", Field: "data", Align: pipeline.AlignNearest, MaxAge: age}},
+			Events:  &pipeline.FieldRef{Topic: "/session/event", Field: "kind"}}
+		with := func(edit func(rec, frames map[string]any)) map[string]any {
+			m := decode(t, raw)
+			cfg := obj(t, m["config"], "config")
+			r, f := obj(t, toAny(rec), "recordings"), obj(t, toAny(frames), "frames")
+			edit(r, f)
+			cfg["recordings"] = r
+			obj(t, obj(t, cfg["embodiments"], "embodiments")["cart2"], "cart2")["frames"] = f
+			return m
+		}
+		if err := sch.Validate(with(func(_, _ map[string]any) {})); err != nil {
+			t.Errorf("a manifest with recordings and frames does not validate: %v", err)
+		}
+		for name, edit := range map[string]func(rec, frames map[string]any){
+			"align cubic": func(_, f map[string]any) {
+				arr(t, f["obs"], "obs")[0].(map[string]any)["align"] = "cubic"
+			},
+			"rate and clock":         func(_, f map[string]any) { f["clock"] = "/arm/joints" },
+			"neither rate nor clock": func(_, f map[string]any) { delete(f, "rate") },
+			"time wall":              func(r, _ map[string]any) { r["time"] = "wall" },
+			"unit by path and key":   func(r, _ map[string]any) { obj(t, r["unit"], "unit")["path"] = "^(.*)$" },
+		} {
+			if err := sch.Validate(with(edit)); err == nil {
+				t.Errorf("%s: the edited manifest validates", name)
+			}
+		}
+	})
 
 	// Optional members stay optional: a store without entity tags writes no
 	// etag, and a stage record may lack its item counts.

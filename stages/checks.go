@@ -2,10 +2,11 @@ package stages
 
 import (
 	"context"
+	"crypto/sha256"
+	"encoding/hex"
 	"errors"
 	"fmt"
 	"io"
-	"math"
 	"net/url"
 	"path"
 	"regexp"
@@ -14,142 +15,7 @@ import (
 	"hindcast/pipeline"
 	"hindcast/schemas"
 	"hindcast/stages/imagecheck"
-	"hindcast/stages/jsonl"
 )
-
-// A check decides whether a parsed line is dropped. The checks run in the
-// order of SPEC §3.1 after the line parsed (oversize, truncated and malformed
-// are decided while reading and parsing); the first that fails names the
-// reason. Adding a check is one function here, one entry in lineChecks, and
-// one test.
-type check struct {
-	reason string
-	fn     func(ctx context.Context, c *lineCtx) (bool, error)
-}
-
-func lineChecks() []check {
-	return []check{
-		{pipeline.UnknownEmbodiment, checkEmbodiment},
-		{pipeline.DimMismatch, checkDims},
-		{pipeline.NonFinite, checkFinite},
-		{pipeline.OutOfRange, checkRange},
-		{pipeline.ImageMissing, checkImagesPresent},
-		{pipeline.ImageCorrupt, checkImagesComplete},
-		{pipeline.TimeRegress, checkTimeOrder},
-	}
-}
-
-// lineCtx is one line under inspection, with what the checks learn on the way.
-type lineCtx struct {
-	line  *jsonl.Line
-	cfg   *pipeline.Config
-	emb   *pipeline.Embodiment
-	f32   bool
-	imgs  [][]byte // per declared camera, after checkImagesPresent
-	fetch func(ctx context.Context, ref string) ([]byte, error)
-	// lastT is the last accepted t per unit in this object.
-	lastT map[string]int64
-}
-
-func checkEmbodiment(_ context.Context, c *lineCtx) (bool, error) {
-	c.emb = c.cfg.Embodiments[c.line.Embodiment]
-	return c.emb != nil, nil
-}
-
-func checkDims(_ context.Context, c *lineCtx) (bool, error) {
-	l := c.line
-	return len(l.Obs) == c.emb.Obs && (!l.HasAct || len(l.Act) == c.emb.Act), nil
-}
-
-// checkFinite rejects NaN and ±Inf, including finite JSON numbers that
-// become infinite in the output float type (1e39 as float32): the shard
-// would hold an infinity either way.
-func checkFinite(_ context.Context, c *lineCtx) (bool, error) {
-	l := c.line
-	if l.NonFinite {
-		return false, nil
-	}
-	return finiteIn(l.Obs, c.f32) && (!l.HasAct || finiteIn(l.Act, c.f32)), nil
-}
-
-func finiteIn(v []float64, f32 bool) bool {
-	for _, x := range v {
-		if math.IsNaN(x) || math.IsInf(x, 0) || (f32 && math.IsInf(float64(float32(x)), 0)) {
-			return false
-		}
-	}
-	return true
-}
-
-// checkRange compares the values as written (before rounding to the output
-// type) with the declared bounds.
-func checkRange(_ context.Context, c *lineCtx) (bool, error) {
-	l, e := c.line, c.emb
-	if !within(l.Obs, e.ObsLow, e.ObsHigh) {
-		return false, nil
-	}
-	return !l.HasAct || within(l.Act, e.ActLow, e.ActHigh), nil
-}
-
-func within(v, low, high []float64) bool {
-	for i, x := range v {
-		if (low != nil && x < low[i]) || (high != nil && x > high[i]) {
-			return false
-		}
-	}
-	return true
-}
-
-// checkImagesPresent finds every declared camera and fetches its bytes; a
-// camera absent from the line, or an object that does not exist, drops it.
-// Data URIs that do not decode are left for checkImagesComplete.
-func checkImagesPresent(ctx context.Context, c *lineCtx) (bool, error) {
-	c.imgs = c.imgs[:0]
-	for _, cam := range c.emb.Cameras {
-		ref, ok := cameraRef(c.line, cam)
-		if !ok {
-			return false, nil
-		}
-		b, err := c.fetch(ctx, ref)
-		if errors.Is(err, pipeline.ErrNotFound) || errors.Is(err, errBadRef) {
-			return false, nil
-		}
-		if err != nil && !errors.Is(err, errCorrupt) {
-			return false, err
-		}
-		c.imgs = append(c.imgs, b) // nil when corrupt
-	}
-	return true, nil
-}
-
-// cameraRef returns the last value written for cam (JSON's last-wins rule for
-// repeated names).
-func cameraRef(l *jsonl.Line, cam string) (string, bool) {
-	ref, ok := "", false
-	for _, m := range l.Img {
-		if m.Name == cam {
-			ref, ok = m.Ref, true
-		}
-	}
-	return ref, ok
-}
-
-func checkImagesComplete(_ context.Context, c *lineCtx) (bool, error) {
-	for _, b := range c.imgs {
-		if b == nil {
-			return false, nil
-		}
-		if _, err := imagecheck.Check(b); err != nil {
-			return false, nil
-		}
-	}
-	return true, nil
-}
-
-func checkTimeOrder(_ context.Context, c *lineCtx) (bool, error) {
-	last, seen := c.lastT[c.line.Unit]
-	return !seen || c.line.T > last, nil
-}
 
 var (
 	// errBadRef marks an image reference that names no object (a key
@@ -259,11 +125,12 @@ func hasDotDot(key string) bool {
 	return path.IsAbs(key)
 }
 
-// toFrame fills f from an accepted line, rounding vectors to the output type.
-func toFrame(f *schemas.Frame, c *lineCtx, src string, line int64) {
-	l := c.line
+// toFrame fills f from an accepted candidate, rounding vectors to the
+// output type.
+func toFrame(f *schemas.Frame, c *checkCtx, src string) {
+	l := c.cand
 	f.Reset()
-	f.Unit, f.Embodiment, f.T, f.Src, f.Line = l.Unit, l.Embodiment, l.T, src, line
+	f.Unit, f.Embodiment, f.T, f.Src, f.Line = l.Unit, l.Embodiment, l.T, src, l.Line
 	f.Obs = appendRounded(f.Obs, l.Obs, c.f32)
 	f.HasAct = l.HasAct
 	if l.HasAct {
@@ -278,10 +145,26 @@ func toFrame(f *schemas.Frame, c *lineCtx, src string, line int64) {
 	f.Task, f.HasTask = l.Task, l.HasTask
 	f.Success, f.HasSuccess = l.Success, l.HasSuccess
 	for i, cam := range c.emb.Cameras {
-		ref, _ := cameraRef(l, cam)
+		var ref string
+		if l.HasImages {
+			ref = recordedImageRef(c.imgs[i])
+		} else {
+			ref, _ = cameraRef(l, cam)
+		}
 		f.ImgRef = append(f.ImgRef, ref)
 		f.Img = append(f.Img, c.imgs[i])
 	}
+}
+
+// recordedImageRef stands for a recording's camera bytes where a JSON Lines
+// frame has its reference as written, so that §3.2's comparison (by
+// reference) finds two recording frames equal exactly when their bytes are
+// (SPEC §7.4). It starts with a byte that is never valid UTF-8, so it can
+// never equal a reference a JSON Lines line wrote (such a line is
+// malformed).
+func recordedImageRef(b []byte) string {
+	h := sha256.Sum256(b)
+	return "\xffsha256:" + hex.EncodeToString(h[:])
 }
 
 func appendRounded(dst, src []float64, f32 bool) []float64 {

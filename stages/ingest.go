@@ -3,7 +3,6 @@ package stages
 import (
 	"bufio"
 	"bytes"
-	"compress/gzip"
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
@@ -13,17 +12,18 @@ import (
 	"slices"
 	"strings"
 
-	"github.com/klauspost/compress/zstd"
-
 	"hindcast/pipeline"
 	"hindcast/schemas"
-	"hindcast/stages/jsonl"
+	"hindcast/stages/recording/mcapread"
 )
 
 // Ingest reads each source object once, decides for every line whether it is
 // kept (SPEC §3.1), and writes the kept frames as runs sorted by (unit, t),
 // one set per partition, so the episodes stage only merges.
-type Ingest struct{}
+type Ingest struct {
+	// ticks reads recordings; nil means MCAP (tests put a stand-in here).
+	ticks tickSource
+}
 
 // Name implements pipeline.Stage.
 func (Ingest) Name() string { return "ingest" }
@@ -41,8 +41,8 @@ type ingestEmbodiment struct {
 	Frames *pipeline.FramesConfig `json:"frames,omitempty"`
 }
 
-// Reads implements pipeline.Stage: what decides which lines are kept, how
-// values are rounded and how frames are spread over partitions.
+// Reads implements pipeline.Stage: what decides which lines and ticks are
+// kept, how values are rounded and how frames are spread over partitions.
 func (Ingest) Reads(cfg *pipeline.Config) any {
 	embs := map[string]ingestEmbodiment{}
 	for name, e := range cfg.Embodiments {
@@ -109,7 +109,7 @@ func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (a
 		sum: pipeline.IngestSummary{Key: obj.Key, ETag: obj.ETag, Version: obj.Version,
 			Dropped: map[string]int64{}, DroppedByUnit: map[string]map[string]int64{}, Runs: map[string][]string{},
 			PartFrames: map[string]int64{}},
-		parts: map[string]int{},
+		parts: map[string]int{}, ticks: st.ticks,
 	}
 	in.q = newQuarantine(ctx, env, in.dir+"quarantine.arrow")
 	defer in.q.abort()
@@ -136,11 +136,12 @@ type ingester struct {
 	runs      int
 	floats    schemas.Floats
 
-	// The line being decided, for the quarantine.
-	q       *quarantine
-	lineNo  int64
-	raw     []byte
-	parsedT int64
+	q      *quarantine
+	checks []check
+	cc     *checkCtx
+	frame  schemas.Frame
+	frames int64 // accepted, for progress
+	ticks  tickSource
 }
 
 // sourceReader counts and hashes the stored bytes as they are read, and keeps
@@ -175,7 +176,12 @@ func (in *ingester) run(ctx context.Context) error {
 	if err != nil {
 		return err
 	}
-	defer rc.Close()
+	open := true
+	defer func() {
+		if open {
+			rc.Close()
+		}
+	}()
 	if v, ok := rc.(interface{ VersionID() string }); ok && v.VersionID() != "" {
 		in.sum.Version = v.VersionID()
 	}
@@ -189,6 +195,18 @@ func (in *ingester) run(ctx context.Context) error {
 		src.prog = func(n int64) { in.env.Progress.Advance("ingest", 0, n) }
 	}
 	raw := bufio.NewReaderSize(src, 256<<10)
+	// What the object is, by its first bytes, never by its name (SPEC §7.1).
+	if magic, _ := raw.Peek(len(mcapread.Magic)); bytes.Equal(magic, mcapread.Magic[:]) {
+		// A recording is read by ranged reads of its own (its index is at
+		// the end); this stream is not needed.
+		open = false
+		rc.Close()
+		return in.recording(ctx)
+	}
+	if src.err != nil {
+		return src.err
+	}
+	in.startChecks((&imageFetcher{env: in.env}).fetch)
 	body, err := decompress(raw)
 	if err != nil {
 		if src.err != nil {
@@ -199,9 +217,12 @@ func (in *ingester) run(ctx context.Context) error {
 		in.sum.Incomplete = true
 		body = bytes.NewReader(nil)
 	}
-	if err := in.lines(ctx, body, src); err != nil {
+	incomplete, err := decodeLines(ctx, body, src, in.env.Config.Source.MaxLineBytes, func(c *Candidate) error { return in.consume(ctx, c) })
+	if err != nil {
 		return err
 	}
+	in.sum.Incomplete = in.sum.Incomplete || incomplete
+	in.endProgress()
 	if c, ok := body.(io.Closer); ok {
 		c.Close()
 	}
@@ -223,163 +244,71 @@ func (in *ingester) run(ctx context.Context) error {
 	return in.flush(ctx)
 }
 
-// decompress picks the decoder by the stream's magic bytes, whatever the
-// object's name says: gzip (RFC 1952: 1f 8b) or zstd (RFC 8878: 28 b5 2f fd).
-func decompress(r *bufio.Reader) (io.Reader, error) {
-	magic, _ := r.Peek(4)
-	switch {
-	case len(magic) >= 2 && magic[0] == 0x1f && magic[1] == 0x8b:
-		return gzip.NewReader(r)
-	case len(magic) == 4 && bytes.Equal(magic, []byte{0x28, 0xb5, 0x2f, 0xfd}):
-		// A frame may declare a window of up to 3.75 TB (RFC 8878 §3.1.1.1.2),
-		// which decoding may hold; the zstd tool itself refuses more than
-		// 128 MiB unless told otherwise (its --long default, from memory).
-		// A larger one makes the object incomplete, not the worker run out
-		// of memory.
-		d, err := zstd.NewReader(r, zstd.WithDecoderConcurrency(1), zstd.WithDecoderLowmem(true), zstd.WithDecoderMaxWindow(zstdMaxWindow))
-		if err != nil {
-			return nil, err
-		}
-		return zstdCloser{d}, nil
-	}
-	return r, nil
-}
-
-// zstdMaxWindow is the largest zstd window an ingest item decodes with.
-const zstdMaxWindow = 128 << 20
-
-type zstdCloser struct{ *zstd.Decoder }
-
-func (z zstdCloser) Close() error { z.Decoder.Close(); return nil }
-
-// drop counts the current line as dropped, and quarantines it when asked.
-func (in *ingester) drop(reason, unit string) {
-	in.sum.Dropped[reason]++
-	pipeline.AddCount(in.sum.DroppedByUnit, unit, reason, 1)
-	if in.q != nil {
-		d := schemas.Dropped{Src: in.obj.Key, SrcLine: in.lineNo, Reason: reason, Stage: "ingest", Unit: unit}
-		if unit != "" {
-			d.T, d.HasT = in.parsedT, true
-		}
-		if in.raw != nil {
-			d.Line = append([]byte{}, in.raw[:min(len(in.raw), schemas.QuarantineLineBytes)]...)
-		}
-		in.q.add(&d)
-	}
-}
-
-// lines reads the decompressed stream line by line.
-func (in *ingester) lines(ctx context.Context, body io.Reader, src *sourceReader) error {
+// startChecks readies the checks for this object's candidates.
+func (in *ingester) startChecks(fetch func(ctx context.Context, ref string) ([]byte, error)) {
 	cfg := in.env.Config
-	maxLen := cfg.Source.MaxLineBytes
-	// A byte-order mark starts the object, not its first line: drop it
-	// before lines are measured (SPEC §1).
-	br := bufio.NewReaderSize(body, 64<<10)
-	if bom, _ := br.Peek(3); bytes.Equal(bom, []byte("\xef\xbb\xbf")) {
-		br.Discard(3)
-	}
-	lr := newLineReader(br, maxLen)
-	var parsed jsonl.Line
-	fe := &imageFetcher{env: in.env}
-	c := &lineCtx{line: &parsed, cfg: cfg, f32: cfg.Float == "float32", fetch: fe.fetch, lastT: map[string]int64{}}
-	checks := lineChecks()
-	var frame schemas.Frame
-	var lineNo, frames int64
-	for {
-		if lineNo%4096 == 0 {
-			if err := ctx.Err(); err != nil {
-				return err
-			}
-		}
-		line, eol, oversize, rerr := lr.next()
-		if rerr != nil && src.err != nil {
-			return src.err
-		}
-		broken := rerr != nil && rerr != io.EOF
-		if rerr == io.EOF && len(line) == 0 && !oversize {
-			break
-		}
-		lineNo++
-		in.lineNo, in.raw = lineNo, line
-		if !oversize && isBlank(line) {
-			if broken {
-				in.sum.Incomplete = true
-				break
-			}
-			continue
-		}
-		in.sum.Lines++
-		switch {
-		case oversize:
-			in.drop(pipeline.Oversize, "")
-		case broken:
-			// The stream was cut: what was decoded of this line is partial.
-			in.drop(pipeline.Truncated, "")
-		default:
-			if err := jsonl.Parse(line, &parsed); err != nil {
-				if !eol {
-					in.drop(pipeline.Truncated, "")
-				} else {
-					in.drop(pipeline.Malformed, "")
-				}
-				break
-			}
-			in.parsedT = parsed.T
-			reason, err := runChecks(ctx, checks, c)
-			if err != nil {
-				return fmt.Errorf("line %d: %w", lineNo, err)
-			}
-			if reason != "" {
-				in.drop(reason, parsed.Unit)
-				break
-			}
-			c.lastT[parsed.Unit] = parsed.T
-			toFrame(&frame, c, in.obj.Key, lineNo)
-			if err := in.add(ctx, &frame); err != nil {
-				return err
-			}
-			in.sum.Kept++
-			frames++
-			if frames%8192 == 0 && in.env.Progress != nil {
-				in.env.Progress.Advance("ingest", 8192, 0)
-			}
-		}
-		if broken {
-			in.sum.Incomplete = true
-			break
-		}
-		if !eol {
-			break
+	in.checks = candidateChecks()
+	in.cc = &checkCtx{cfg: cfg, f32: cfg.Float == "float32", fetch: fetch, lastT: map[string]int64{}}
+}
+
+// consume decides one candidate, whatever its format: it is counted in
+// lines and either dropped with the decoder's reason or the first failing
+// check's, or kept as a frame.
+func (in *ingester) consume(ctx context.Context, c *Candidate) error {
+	in.sum.Lines++
+	reason := c.Reason
+	if reason == "" {
+		in.cc.cand = c
+		var err error
+		if reason, err = runChecks(ctx, in.checks, in.cc); err != nil {
+			return fmt.Errorf("line %d: %w", c.Line, err)
 		}
 	}
-	if in.env.Progress != nil {
-		in.env.Progress.Advance("ingest", frames%8192, 0)
+	if reason != "" {
+		in.drop(c, reason)
+		return nil
+	}
+	in.cc.lastT[c.Unit] = c.T
+	toFrame(&in.frame, in.cc, in.obj.Key)
+	if err := in.add(ctx, &in.frame); err != nil {
+		return err
+	}
+	in.sum.Kept++
+	in.frames++
+	if in.frames%8192 == 0 && in.env.Progress != nil {
+		in.env.Progress.Advance("ingest", 8192, 0)
 	}
 	return nil
 }
 
-func runChecks(ctx context.Context, checks []check, c *lineCtx) (string, error) {
-	for _, ch := range checks {
-		ok, err := ch.fn(ctx, c)
-		if err != nil {
-			return "", err
-		}
-		if !ok {
-			return ch.reason, nil
-		}
+// endProgress reports the frames not yet reported.
+func (in *ingester) endProgress() {
+	if in.env.Progress != nil {
+		in.env.Progress.Advance("ingest", in.frames%8192, 0)
 	}
-	return "", nil
 }
 
-func isBlank(b []byte) bool {
-	for _, c := range b {
-		switch c {
-		case ' ', '\t', '\r', '\v', '\f':
-		default:
-			return false
-		}
+// drop counts a candidate as dropped, and quarantines it when asked.
+func (in *ingester) drop(c *Candidate, reason string) {
+	in.sum.Dropped[reason]++
+	pipeline.AddCount(in.sum.DroppedByUnit, c.Unit, reason, 1)
+	if reason == pipeline.Stale && in.sum.Recording != nil {
+		in.sum.Recording.StaleBy[c.StaleTopic]++
 	}
-	return true
+	if in.q != nil {
+		d := schemas.Dropped{Src: in.obj.Key, SrcLine: c.Line, Reason: reason, Stage: "ingest", Unit: c.Unit}
+		if c.HasT {
+			d.T, d.HasT = c.T, true
+		}
+		raw := c.Raw
+		if raw == nil && in.sum.Recording != nil {
+			raw = tickRecord(in.obj.Key, c, reason)
+		}
+		if raw != nil {
+			d.Line = append([]byte{}, raw[:min(len(raw), schemas.QuarantineLineBytes)]...)
+		}
+		in.q.add(&d)
+	}
 }
 
 // add keeps a copy of f in the current chunk, writing runs out when the
@@ -478,71 +407,4 @@ func storeFrames(ctx context.Context, work pipeline.Store, key string, f32 bool,
 		return fmt.Errorf("write %s: %w", key, err)
 	}
 	return up.Commit(false)
-}
-
-// lineReader splits a stream into physical lines without ever holding more
-// than maxLen+2 bytes of one: a longer line is skipped to its end and
-// reported as oversize, unless it held only white space (it is then
-// returned empty, a blank line).
-type lineReader struct {
-	br     *bufio.Reader
-	maxLen int
-	buf    []byte
-}
-
-func newLineReader(r io.Reader, maxLen int) *lineReader {
-	br, ok := r.(*bufio.Reader)
-	if !ok {
-		br = bufio.NewReaderSize(r, 64<<10)
-	}
-	return &lineReader{br: br, maxLen: maxLen}
-}
-
-// next returns the next line without its line end ("\n", or "\r\n"), whether
-// it had a line end, and whether it was too long. err is io.EOF after the
-// last line, or the stream's error; line then holds what was read of a
-// partial line.
-func (lr *lineReader) next() (line []byte, eol, oversize bool, err error) {
-	lr.buf = lr.buf[:0]
-	// A line of only white space is skipped whatever its length (SPEC §1),
-	// so a skipped oversize line is watched for anything else.
-	blank := true
-	for {
-		chunk, e := lr.br.ReadSlice('\n')
-		if !oversize {
-			if len(lr.buf)+len(chunk) > lr.maxLen+2 {
-				oversize = true
-				blank = isBlank(lr.buf)
-			} else {
-				lr.buf = append(lr.buf, chunk...)
-			}
-		}
-		if oversize && blank {
-			blank = isBlank(bytes.TrimSuffix(chunk, []byte("\n")))
-		}
-		if e == bufio.ErrBufferFull {
-			continue
-		}
-		if e == nil {
-			eol = true
-			break
-		}
-		err = e
-		break
-	}
-	if oversize {
-		if blank {
-			return lr.buf[:0], eol, false, err
-		}
-		return nil, eol, true, err
-	}
-	b := lr.buf
-	if eol {
-		b = b[:len(b)-1]
-		b = bytes.TrimSuffix(b, []byte("\r"))
-	}
-	if len(b) > lr.maxLen && !isBlank(b) {
-		return nil, eol, true, err
-	}
-	return b, eol, false, err
 }
