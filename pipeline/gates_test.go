@@ -24,7 +24,7 @@ func gatesManifest() *Manifest {
 }
 
 func f64(v float64) *float64 { return &v }
-func intp(v int) *int         { return &v }
+func intp(v int) *int        { return &v }
 
 // TestCheckGates: each gate's value computed by hand from gatesManifest:
 // dropped 20/100; malformed 15/100, non_finite 5/100; b.jsonl drops 17/40 =
