@@ -90,6 +90,8 @@ Usage:
   hindcast run --config FILE [--version V] [--parallel N]
 
 Flags:
+  -baseline string
+    	version the drift gate compares with (default: gates.baseline, else the latest version)
   -config string
     	config file (YAML, see configs/)
   -cpuprofile string
@@ -98,6 +100,8 @@ Flags:
     	work items processed at once (never changes the output) (default %d)
   -version string
     	version to commit (default: UTC time YYYYMMDDTHHMMSSZ)
+  -waive gate
+    	publish even when this quality gate fails (repeatable; recorded as waived)
 `, runtime.NumCPU())
 	if code != exitOK || out != wantRun || errOut != "" {
 		t.Errorf("help run: exit %d, stdout:\n%s\nstderr:\n%s\nwant exit 0, stdout:\n%s", code, out, errOut, wantRun)

@@ -94,6 +94,9 @@ func inspectCommand(ctx context.Context, c *Command, stdout io.Writer) error {
 		return nil
 	case "diff":
 		r := inspect.Diff(vs[0], vs[1])
+		if err := inspect.DiffMoves(ctx, r, vs[0], vs[1]); err != nil {
+			return err
+		}
 		return emit(r, r.WriteText)
 	case "report":
 		f, err := os.Create(c.Output)

@@ -24,6 +24,7 @@ import (
 	"github.com/mattn/go-isatty"
 
 	"hindcast/fleet"
+	"hindcast/inspect"
 	"hindcast/pipeline"
 	"hindcast/stages"
 )
@@ -33,6 +34,7 @@ const (
 	exitOK      = 0
 	exitRuntime = 1
 	exitUsage   = 2
+	exitGate    = 3 // a quality gate failed: the data is bad, nothing was committed
 )
 
 // usageError is a command-line or config problem: exit code 2. When
@@ -75,6 +77,8 @@ type Command struct {
 	File     string
 	Row      int64
 	Output   string
+	// Gates are run's and commit's overrides of the quality gates.
+	Gates pipeline.GateOptions
 }
 
 type commandSpec struct {
@@ -88,6 +92,13 @@ type commandSpec struct {
 var commandOrder = []string{"run", "stage", "commit", "plan", "show", "trace", "verify", "diff", "report", "demo", "bench"}
 
 func commands() map[string]commandSpec {
+	gates := func(fs *flag.FlagSet, c *Command) {
+		fs.Func("waive", "publish even when this quality `gate` fails (repeatable; recorded as waived)", func(v string) error {
+			c.Gates.Waive = append(c.Gates.Waive, v)
+			return nil
+		})
+		fs.StringVar(&c.Gates.Baseline, "baseline", "", "version the drift gate compares with (default: gates.baseline, else the latest version)")
+	}
 	parallel := func(fs *flag.FlagSet, c *Command) {
 		fs.IntVar(&c.Parallel, "parallel", runtime.NumCPU(), "work items processed at once (never changes the output)")
 	}
@@ -97,6 +108,7 @@ func commands() map[string]commandSpec {
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
 			fs.StringVar(&c.Profile, "cpuprofile", "", "write a CPU profile (runtime/pprof) to this file")
 			parallel(fs, c)
+			gates(fs, c)
 		}},
 		"stage": {"stage NAME --config FILE [--worker I/N | --workers N]", "run one worker's share of one stage (ingest, episodes, goals or pack)", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
@@ -121,6 +133,7 @@ func commands() map[string]commandSpec {
 		"commit": {"commit --config FILE [--version V]", "publish a version from the sealed outputs of every stage, manifest last", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
 			fs.StringVar(&c.Version, "version", "", "version to commit (default: UTC time YYYYMMDDTHHMMSSZ)")
+			gates(fs, c)
 		}},
 		"plan": {"plan --config FILE [--json]", "show what a run would do (objects new and cached, partitions to recompute, bytes to read); writes nothing", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Config, "config", "", "config file (YAML, see configs/)")
@@ -172,7 +185,7 @@ func topUsage() string {
 		fmt.Fprintf(&b, "  hindcast %s\n", cmds[name].synopsis)
 	}
 	b.WriteString("\nRun \"hindcast COMMAND --help\" for a command's flags.\n" +
-		"Exit codes: 0 success, 1 runtime failure, 2 usage or config error.\n")
+		"Exit codes: 0 success, 1 runtime failure, 2 usage or config error, 3 a quality gate failed (nothing committed).\n")
 	return b.String()
 }
 
@@ -356,6 +369,9 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if errors.As(err, &ue) || errors.As(err, &ce) {
 		return exitUsage
 	}
+	if errors.Is(err, pipeline.ErrGateFailed) {
+		return exitGate
+	}
 	return exitRuntime
 }
 
@@ -380,7 +396,7 @@ func toolInfo() pipeline.ToolInfo {
 }
 
 // runConfig loads the config and runs the pipeline on it.
-func runConfig(ctx context.Context, path, version string, parallel int, stdout io.Writer, ui *ui) (*pipeline.Manifest, error) {
+func runConfig(ctx context.Context, path, version string, parallel int, gates pipeline.GateOptions, stdout io.Writer, ui *ui) (*pipeline.Manifest, error) {
 	cfg, err := pipeline.LoadConfig(path)
 	if err != nil {
 		return nil, err
@@ -389,7 +405,7 @@ func runConfig(ctx context.Context, path, version string, parallel int, stdout i
 	metrics := &pipeline.Metrics{}
 	m, err := pipeline.Execute(ctx, cfg, stages.All(), pipeline.Options{
 		Version: version, Parallel: parallel, Log: ui.log, Progress: ui.progress(), Tool: toolInfo(), Metrics: metrics,
-		Code: pipeline.CodeID(),
+		Code: pipeline.CodeID(), Gates: gates, Drift: inspect.MaxDrift,
 	})
 	if r := metrics.Retries.Load(); err != nil && r > 0 {
 		fmt.Fprintf(ui.w, "storage: %d requests retried before the failure\n", r)
@@ -415,7 +431,7 @@ func runCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error
 		}
 		defer pprof.StopCPUProfile()
 	}
-	_, err := runConfig(ctx, c.Config, c.Version, c.Parallel, stdout, ui)
+	_, err := runConfig(ctx, c.Config, c.Version, c.Parallel, c.Gates, stdout, ui)
 	return err
 }
 
@@ -428,7 +444,7 @@ func demoCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) erro
 		return fmt.Errorf("write demo fleet in %s: %w", dir, err)
 	}
 	fmt.Fprintf(stdout, "demo fleet of Larkspur Depot written to %s\n", filepath.Join(dir, "logs"))
-	_, err = runConfig(ctx, filepath.Join(dir, "hindcast.yaml"), "", c.Parallel, stdout, ui)
+	_, err = runConfig(ctx, filepath.Join(dir, "hindcast.yaml"), "", c.Parallel, pipeline.GateOptions{}, stdout, ui)
 	return err
 }
 
@@ -457,7 +473,7 @@ func stageNames() []string {
 // jobOptions are the settings every command passes to the pipeline.
 func jobOptions(c *Command, ui *ui, metrics *pipeline.Metrics) pipeline.Options {
 	return pipeline.Options{Version: c.Version, Parallel: c.Parallel, Log: ui.log, Progress: ui.progress(),
-		Tool: toolInfo(), Metrics: metrics, Code: pipeline.CodeID()}
+		Tool: toolInfo(), Metrics: metrics, Code: pipeline.CodeID(), Gates: c.Gates, Drift: inspect.MaxDrift}
 }
 
 func stageCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) error {

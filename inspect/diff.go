@@ -2,9 +2,11 @@ package inspect
 
 import (
 	"bytes"
+	"context"
 	"encoding/json"
 	"fmt"
 	"io"
+	"maps"
 	"math/big"
 	"slices"
 	"sort"
@@ -29,6 +31,19 @@ type DiffResult struct {
 	Skipped []DiffReason `json:"skipped,omitempty"`
 	Splits  []DiffSplit  `json:"splits"`
 	Files   DiffFiles    `json:"files"`
+	// Drift lists every dimension whose stats moved (shift ≠ 0 or std
+	// ratio ≠ 1), largest shift first (see Drifts).
+	Drift []Drift `json:"drift"`
+	// Moved lists the episodes present in both versions whose split
+	// differs, by episode id; filled by DiffMoves, which reads the frames.
+	Moved []DiffMove `json:"moved"`
+}
+
+// DiffMove is an episode that changed split between the two versions.
+type DiffMove struct {
+	Episode string `json:"episode"`
+	A       string `json:"a"`
+	B       string `json:"b"`
 }
 
 // DiffSide names one of the two versions.
@@ -98,7 +113,8 @@ type DiffDelta struct {
 func (r *DiffResult) Empty() bool {
 	return len(r.Config) == 0 && len(r.Sources.Added)+len(r.Sources.Removed)+len(r.Sources.Changed) == 0 &&
 		len(r.Dropped) == 0 && len(r.Skipped) == 0 && len(r.Splits) == 0 &&
-		len(r.Files.Added)+len(r.Files.Removed)+len(r.Files.Changed) == 0
+		len(r.Files.Added)+len(r.Files.Removed)+len(r.Files.Changed) == 0 &&
+		len(r.Drift) == 0 && len(r.Moved) == 0
 }
 
 // Diff compares version a with version b.
@@ -151,7 +167,47 @@ func Diff(a, b *pipeline.Version) *DiffResult {
 	}
 
 	r.Splits = dfSplits(ma.Counts, mb.Counts)
+	r.Drift = []Drift{}
+	for _, d := range Drifts(ma.Stats, mb.Stats) {
+		if d.Shift != 0 || d.StdRatio != 1 {
+			r.Drift = append(r.Drift, d)
+		}
+	}
+	r.Moved = []DiffMove{}
 	return r
+}
+
+// DiffMoves fills r.Moved: the split of every episode of a and of b, from
+// the episode column of their frames files, and those whose split differs.
+func DiffMoves(ctx context.Context, r *DiffResult, a, b *pipeline.Version) error {
+	splits := func(v *pipeline.Version) (map[string]string, error) {
+		out := map[string]string{}
+		for _, f := range v.Manifest.Files {
+			if f.Table != "frames" {
+				continue
+			}
+			err := vfReadRows(ctx, v.Store, f.Path, func(row *vfEpisodeRow, _ int64) { out[row.Episode] = f.Split })
+			if err != nil {
+				return nil, fmt.Errorf("diff %s: %w", v.URI, err)
+			}
+		}
+		return out, nil
+	}
+	sa, err := splits(a)
+	if err != nil {
+		return err
+	}
+	sb, err := splits(b)
+	if err != nil {
+		return err
+	}
+	r.Moved = []DiffMove{}
+	for _, ep := range slices.Sorted(maps.Keys(sa)) {
+		if x, ok := sb[ep]; ok && x != sa[ep] {
+			r.Moved = append(r.Moved, DiffMove{ep, sa[ep], x})
+		}
+	}
+	return nil
 }
 
 // dfSets compares two name → sha256 maps: names only in b, only in a, and
@@ -379,6 +435,26 @@ func (r *DiffResult) WriteText(w io.Writer) error {
 	f := r.Files
 	p.printf("\nfiles: %d added, %d removed, %d changed\n", len(f.Added), len(f.Removed), len(f.Changed))
 	dfNames(p, f.Added, f.Removed, f.Changed)
+
+	p.printf("\ndrift: %s (mean shift in a's std, std ratio b/a)\n", dfDiffer(len(r.Drift), "dimension"))
+	if len(r.Drift) > 0 {
+		rows := [][]string{}
+		for _, d := range r.Drift {
+			rows = append(rows, []string{d.Embodiment, fmt.Sprintf("%s[%d]", d.Vector, d.Dim), fmt.Sprintf("%+.6g", d.Shift),
+				fmt.Sprintf("%.6g", d.StdRatio), fmt.Sprintf("%.6g", d.BaseMean), fmt.Sprintf("%.6g", d.Mean),
+				fmt.Sprintf("%.6g", d.BaseStd), fmt.Sprintf("%.6g", d.Std)})
+		}
+		p.table(2, []string{"embodiment", "dim", "shift", "std ratio", "mean a", "mean b", "std a", "std b"}, rows)
+	}
+
+	p.printf("\nepisodes that changed split: %d\n", len(r.Moved))
+	if len(r.Moved) > 0 {
+		rows := [][]string{}
+		for _, m := range r.Moved {
+			rows = append(rows, []string{m.Episode, m.A, m.B})
+		}
+		p.table(1, []string{"episode", "a", "b"}, rows)
+	}
 	return p.err
 }
 

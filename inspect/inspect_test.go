@@ -1120,7 +1120,7 @@ func TestDiff(t *testing.T) {
 	empty := &DiffResult{A: same.A, B: same.A, SameDigest: true, Config: []DiffConfig{},
 		Sources: DiffSources{Added: []string{}, Removed: []string{}, Changed: []DiffSHA256{}},
 		Dropped: []DiffReason{}, Splits: []DiffSplit{},
-		Files: DiffFiles{Added: []string{}, Removed: []string{}, Changed: []DiffSHA256{}}}
+		Files: DiffFiles{Added: []string{}, Removed: []string{}, Changed: []DiffSHA256{}}, Drift: []Drift{}, Moved: []DiffMove{}}
 	if !same.Empty() || !vfEqualJSON(same, empty) {
 		t.Errorf("self diff %+v, want empty", same)
 	}
@@ -1158,6 +1158,7 @@ func TestDiffHandMade(t *testing.T) {
 			{Split: "total", Episodes: DiffDelta{2, 3, 1}, Frames: DiffDelta{20, 25, 5}, Pairs: DiffDelta{40, 48, 8}},
 		},
 		Files: DiffFiles{Added: []string{}, Removed: []string{"pairs/split=val/part-00000.parquet"}, Changed: []DiffSHA256{}},
+		Drift: []Drift{}, Moved: []DiffMove{},
 	}
 	if !vfEqualJSON(r, want) {
 		got, _ := json.Marshal(r)

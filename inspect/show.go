@@ -7,6 +7,7 @@ package inspect
 import (
 	"fmt"
 	"io"
+	"math"
 	"sort"
 	"strconv"
 	"strings"
@@ -32,6 +33,8 @@ type ShowResult struct {
 	Counts     []pipeline.Count `json:"counts"`
 	Lengths    []ShowLengths    `json:"episode_lengths"`
 	Files      ShowFiles        `json:"files"`
+	// Gates are the quality gates the version passed (or had waived).
+	Gates []pipeline.Gate `json:"gates"`
 	// Notes lists manifest entries Show could not use (say, an
 	// episode_steps key that is not a number), so nothing is hidden silently.
 	Notes []string `json:"notes"`
@@ -105,6 +108,7 @@ func Show(v *pipeline.Version) *ShowResult {
 		Dataset: m.Dataset, Version: m.Version, URI: v.URI, Created: m.Created, Tool: m.Tool,
 		ConfigSHA256: m.ConfigSHA256, Digest: m.Digest,
 		Counts: append([]pipeline.Count{}, m.Counts...), Lengths: []ShowLengths{}, Notes: []string{},
+		Gates: append([]pipeline.Gate{}, m.Gates...),
 	}
 	r.Sources.IncompleteKeys = []string{}
 	for _, s := range m.Sources {
@@ -387,8 +391,26 @@ func (r *ShowResult) WriteText(w io.Writer) error {
 	}
 	p.table(2, []string{"table", "split", "files", "rows", "bytes"}, rows)
 
+	if len(r.Gates) > 0 {
+		p.printf("\ngates\n")
+		rows = nil
+		for _, g := range r.Gates {
+			rows = append(rows, []string{g.Name, fmtGate(g.Value), fmtGate(g.Threshold), g.Result, g.Subject})
+		}
+		p.table(1, []string{"gate", "value", "threshold", "result", "where"}, rows)
+	}
+
 	for _, n := range r.Notes {
 		p.printf("note: %s\n", n)
 	}
 	return p.err
+}
+
+// fmtGate prints a gate's number; the largest float stands for an infinite
+// drift (the manifest cannot hold Inf).
+func fmtGate(v float64) string {
+	if v == math.MaxFloat64 {
+		return "+Inf"
+	}
+	return fmt.Sprintf("%.6g", v)
 }

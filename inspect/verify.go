@@ -164,6 +164,17 @@ func Verify(ctx context.Context, v *pipeline.Version) (*VerifyResult, error) {
 		}
 	}
 
+	bad := map[string]bool{}
+	for i, f := range m.Files {
+		if !r.Files[i].OK {
+			bad[f.Path] = true
+		}
+	}
+	gps, err := vfGoalSplits(ctx, v.Store, m, bad)
+	if err != nil {
+		return nil, fmt.Errorf("verify %s: %w", v.URI, err)
+	}
+	r.Problems = append(r.Problems, gps...)
 	r.Problems = append(r.Problems, vfManifest(m, seen)...)
 	r.DigestComputed = pipeline.Digest(m.ConfigSHA256, m.Sources, m.Files)
 	if r.DigestComputed != m.Digest {

@@ -2,9 +2,11 @@ package pipeline
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"log/slog"
+	"strings"
 	"time"
 )
 
@@ -23,6 +25,12 @@ type Options struct {
 	// Metrics receives the stores' counts (requests, retries, bytes); nil
 	// means a fresh set, not reported.
 	Metrics *Metrics
+	// Gates are the operator's overrides of the quality gates; Drift
+	// measures the drift gate (nil: the drift gate has nothing to measure).
+	// Neither is part of any stage key: a rerun with an override reuses
+	// every stage's work.
+	Gates GateOptions
+	Drift DriftFunc
 }
 
 // Job is a config with its stores opened: what every command (run, stage,
@@ -92,6 +100,15 @@ func (j *Job) commit(ctx context.Context, res *Result, version string) (*Manifes
 	m, err := BuildManifest(j.Config, res, version, j.opt.Tool, j.opt.Now())
 	if err != nil {
 		return nil, err
+	}
+	var base *Manifest
+	if j.Config.Gates != nil && j.Config.Gates.MaxDrift != nil {
+		if base, err = j.baseline(ctx); err != nil {
+			return nil, err
+		}
+	}
+	if m.Gates, err = CheckGates(j.Config, m, base, j.opt.Drift, j.opt.Gates); err != nil {
+		return m, err
 	}
 	if j.Config.Quarantine {
 		if m.Quarantine, err = writeQuarantine(ctx, j.Config, j.Env.Work, res); err != nil {
@@ -208,4 +225,51 @@ func Plan(ctx context.Context, cfg *Config, stages []Stage, opt Options) ([]Stag
 		plans = append(plans, p)
 	}
 	return plans, nil
+}
+
+// baseline is the version the drift gate compares with: the one named by
+// flag, else by the config, else the latest committed version of the
+// dataset (by created time, then name); nil when there is none.
+func (j *Job) baseline(ctx context.Context) (*Manifest, error) {
+	name := j.opt.Gates.Baseline
+	if name == "" {
+		name = j.Config.Gates.Baseline
+	}
+	read := func(key string) (*Manifest, error) {
+		raw, err := ReadAll(ctx, j.Out, key)
+		if err != nil {
+			return nil, fmt.Errorf("baseline %s: %w", key, err)
+		}
+		var m Manifest
+		if err := json.Unmarshal(raw, &m); err != nil {
+			return nil, fmt.Errorf("baseline %s: %w", key, err)
+		}
+		return &m, nil
+	}
+	if name != "" {
+		return read(VersionPrefix(j.Config.Dataset, name) + ManifestName)
+	}
+	var keys []string
+	prefix := j.Config.Dataset + "/"
+	err := j.Out.List(ctx, prefix, func(o ObjectInfo) error {
+		rest := strings.TrimPrefix(o.Key, prefix)
+		if v, ok := strings.CutSuffix(rest, "/"+ManifestName); ok && !strings.Contains(v, "/") {
+			keys = append(keys, o.Key)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, fmt.Errorf("baseline: list %s: %w", prefix, err)
+	}
+	var latest *Manifest
+	for _, k := range keys {
+		m, err := read(k)
+		if err != nil {
+			return nil, err
+		}
+		if latest == nil || m.Created > latest.Created || (m.Created == latest.Created && m.Version > latest.Version) {
+			latest = m
+		}
+	}
+	return latest, nil
 }

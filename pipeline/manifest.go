@@ -35,6 +35,8 @@ type Manifest struct {
 	EpisodeSteps map[string]map[string]int64 `json:"episode_steps"`
 	Units        []UnitCount                 `json:"units"`
 	Stages       []StageResult               `json:"stages"`
+	// Gates are the quality gates checked before commit (pipeline/gates.go).
+	Gates []Gate `json:"gates"`
 	// Quarantine is the file of dropped lines (config quarantine: true), or
 	// null.
 	Quarantine *QuarantineFile `json:"quarantine"`

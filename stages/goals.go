@@ -35,7 +35,9 @@ func (Goals) Reads(cfg *pipeline.Config) any {
 	for name, e := range cfg.Embodiments {
 		embs[name] = goalEmbodiment{e.GoalDims, e.GoalTolerance}
 	}
-	return map[string]any{"goals": cfg.Goals, "seed": cfg.Seed, "embodiments": embs}
+	// The splits decide which episodes a negative may come from.
+	return map[string]any{"goals": cfg.Goals, "seed": cfg.Seed, "embodiments": embs,
+		"splits": cfg.Splits, "split_by": cfg.SplitBy}
 }
 
 // Items implements pipeline.Stage: one item per partition, keyed by that
@@ -188,14 +190,15 @@ func relabel(cfg *pipeline.Config, emb *pipeline.Embodiment, id string, idx int,
 	r := EpisodeRNG(cfg.Seed, id)
 	var n int64
 	g := schemas.Goal{Episode: id}
-	// The other episodes of the same embodiment in this partition, for
-	// negatives; self is this episode's position among them.
+	// The other episodes of the same embodiment and split in this
+	// partition, for negatives (SPEC §3.3: a goal never crosses a split);
+	// self is this episode's position among them.
 	var others []int
 	self := 0
 	var negBuf []float64
 	var nr *rand.Rand
 	if neg != nil {
-		others = neg.byEmb[all[idx].Embodiment]
+		others = neg.pool[negKey{all[idx].Embodiment, EpisodeSplit(cfg, all[idx])}]
 		self, _ = slices.BinarySearch(others, idx)
 	}
 	emit := func(s schemas.Strategy, gep string, gstep, off int, goal []float64, next []float64) error {
@@ -264,9 +267,23 @@ func relabel(cfg *pipeline.Config, emb *pipeline.Embodiment, id string, idx int,
 // goals can come from any episode without the partition in memory.
 type negatives struct {
 	f      *os.File
-	byEmb  map[string][]int // episode indexes per embodiment, ascending
+	pool   map[negKey][]int // episode indexes per embodiment and split, ascending
 	offset []int64          // byte offset of each episode's first projection
 	width  []int            // projection length per episode
+}
+
+// negKey names a pool of negatives: the episodes of one embodiment in one
+// split (within one partition).
+type negKey struct{ embodiment, split string }
+
+// EpisodeSplit is the split of an episode (SPEC §3.4), keyed by its id or,
+// for split_by: unit, by its unit, exactly as pack assigns it.
+func EpisodeSplit(cfg *pipeline.Config, e pipeline.EpisodeInfo) string {
+	key := e.ID
+	if cfg.SplitBy == "unit" {
+		key = e.Unit
+	}
+	return pipeline.SplitOf(key, cfg.Splits)
 }
 
 func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.EpisodesSummary, infos []pipeline.EpisodeInfo) (*negatives, error) {
@@ -275,10 +292,11 @@ func loadNegatives(ctx context.Context, env *pipeline.Env, eps pipeline.Episodes
 		return nil, err
 	}
 	os.Remove(tmp.Name()) // unlinked now, freed when closed, even after a crash
-	neg := &negatives{f: tmp, byEmb: map[string][]int{}}
+	neg := &negatives{f: tmp, pool: map[negKey][]int{}}
 	var off int64
 	for i, e := range infos {
-		neg.byEmb[e.Embodiment] = append(neg.byEmb[e.Embodiment], i)
+		k := negKey{e.Embodiment, EpisodeSplit(env.Config, e)}
+		neg.pool[k] = append(neg.pool[k], i)
 		w := len(env.Config.Embodiments[e.Embodiment].GoalDims)
 		neg.offset = append(neg.offset, off)
 		neg.width = append(neg.width, w)

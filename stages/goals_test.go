@@ -6,6 +6,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math"
+	"math/big"
 	"math/rand/v2"
 	"os"
 	"path/filepath"
@@ -1014,6 +1015,21 @@ func goalsPartitionOf(unit string, partitions int) int {
 	return int(binary.BigEndian.Uint64(h[:8]) % uint64(partitions))
 }
 
+// goalsSplitOf is SPEC §3.4 written apart from the code: u = x / 2^64 with
+// x = BE_uint64(sha256(key)[0:8]), compared exactly as rationals.
+func goalsSplitOf(key string, train, val float64) string {
+	h := sha256.Sum256([]byte(key))
+	u := new(big.Rat).SetFrac(new(big.Int).SetUint64(binary.BigEndian.Uint64(h[:8])), new(big.Int).Lsh(big.NewInt(1), 64))
+	tr := new(big.Rat).SetFloat64(train)
+	switch {
+	case u.Cmp(tr) < 0:
+		return "train"
+	case u.Cmp(new(big.Rat).SetFloat64(train+val)) < 0:
+		return "val"
+	}
+	return "test"
+}
+
 func TestGoalsPipeline(t *testing.T) {
 	const cfgYAML = `dataset: goals-test
 source:
@@ -1054,6 +1070,7 @@ float: float64
 		unit, emb string
 		steps     int
 		part      int
+		split     string
 	}
 	eps := map[string]epWant{}
 	obsOf := map[string][][]float64{} // per episode, per step, the obs as written
@@ -1067,7 +1084,7 @@ float: float64
 				tt += 1e9 // a gap too, to be safe: a new episode either way
 			}
 			id := fmt.Sprintf("%s-%d", u.name, tt)
-			eps[id] = epWant{u.name, u.emb, n, goalsPartitionOf(u.name, 2)}
+			eps[id] = epWant{u.name, u.emb, n, goalsPartitionOf(u.name, 2), goalsSplitOf(id, 0.8, 0.1)}
 			for s := range n {
 				ev := ""
 				if s == n-1 && ei < len(u.lens)-1 {
@@ -1097,7 +1114,7 @@ float: float64
 	}
 	hasOther := func(id string) bool {
 		for o, e := range eps {
-			if o != id && e.emb == eps[id].emb && e.part == eps[id].part {
+			if o != id && e.emb == eps[id].emb && e.part == eps[id].part && e.split == eps[id].split {
 				return true
 			}
 		}
@@ -1105,7 +1122,7 @@ float: float64
 	}
 	m, rows := goalsPipelineRun(t, cfgYAML, files, 1)
 	// Pairs per episode: (T−1)·(2 + 1 + 1 + 1 if another episode of its
-	// embodiment shares its partition).
+	// embodiment shares its partition and split; default splits 0.8/0.1/0.1).
 	wantRows := map[string]int{}
 	var total int64
 	for id, e := range eps {
@@ -1163,7 +1180,7 @@ float: float64
 			}
 		case "negative":
 			o, ok := eps[r.GoalEpisode]
-			if !ok || r.GoalEpisode == r.Episode || o.emb != e.emb || o.part != e.part || r.GoalOffset != -1 ||
+			if !ok || r.GoalEpisode == r.Episode || o.emb != e.emb || o.part != e.part || o.split != e.split || r.GoalOffset != -1 ||
 				r.GoalStep < 0 || int(r.GoalStep) >= o.steps {
 				t.Errorf("%s step %d negative: goal (%s, %d, offset %d) is not a step of another %s episode of partition %d",
 					r.Episode, r.Step, r.GoalEpisode, r.GoalStep, r.GoalOffset, e.emb, e.part)
@@ -1192,5 +1209,74 @@ float: float64
 	m2, rows2 := goalsPipelineRun(t, cfgYAML, files, 2)
 	if m2.Digest != m.Digest || !reflect.DeepEqual(rows, rows2) {
 		t.Errorf("two workers: digest %s and %d rows, one worker: %s and %d rows", m2.Digest, len(rows2), m.Digest, len(rows))
+	}
+}
+
+func TestGoalsNegativesStayInTheirSplit(t *testing.T) {
+	// SPEC §3.3 (revised): a negative comes from another episode of the same
+	// embodiment, partition and split. Nine arm episodes and two carts of one
+	// partition, spread over the three splits by SPEC §3.4.
+	gc := pipeline.GoalConfig{Future: 1, Negative: 3, Gamma: 0.9}
+	cfg := goalsStageConfig(5, gc)
+	cfg.Splits = pipeline.SplitConfig{Train: 0.4, Val: 0.3, Test: 0.3}
+	cfg.SplitBy = "episode"
+	var eps []goalsEpisode
+	for i := range 9 {
+		eps = append(eps, goalsEpisode{"a", "arm", int64(100 * (i + 1)), goalsRampObs(3+i, 3, float64(100*i))})
+	}
+	eps = append(eps, goalsEpisode{"c", "cart", 100, goalsRampObs(4, 2, 900)}, goalsEpisode{"c", "cart", 200, goalsRampObs(5, 2, 950)})
+	split := map[string]string{}
+	pool := map[[2]string]int{}
+	emb := map[string]string{}
+	for _, e := range eps {
+		split[e.id()] = goalsSplitOf(e.id(), 0.4, 0.3)
+		emb[e.id()] = e.Embodiment
+		pool[[2]string{e.Embodiment, split[e.id()]}]++
+	}
+	if pool[[2]string{"arm", "train"}] == 0 || pool[[2]string{"arm", "val"}] == 0 || pool[[2]string{"arm", "test"}] == 0 {
+		t.Fatalf("fixture: arm episodes per split %v; want all three splits", pool)
+	}
+	many := 0
+	for k, n := range pool {
+		if k[0] == "arm" && n >= 2 {
+			many++
+		}
+	}
+	if many == 0 {
+		t.Fatalf("fixture: arm episodes per split %v; want a split with two or more", pool)
+	}
+	goals, sum := goalsStageRun(t, cfg, eps)
+	// Negatives per episode: (T−1)·3 when another episode of its embodiment
+	// shares its split, else none.
+	var wantNeg int64
+	wantPer := map[string]int{}
+	for _, e := range eps {
+		if pool[[2]string{e.Embodiment, split[e.id()]}] >= 2 {
+			wantPer[e.id()] = (len(e.Obs) - 1) * 3
+			wantNeg += int64(wantPer[e.id()])
+		}
+	}
+	if sum.PerStrategy["negative"] != wantNeg {
+		t.Errorf("negatives %d, want %d", sum.PerStrategy["negative"], wantNeg)
+	}
+	gotPer := map[string]int{}
+	for _, g := range goals {
+		if g.Strategy != schemas.Negative {
+			continue
+		}
+		gotPer[g.Episode]++
+		if split[g.GoalEpisode] != split[g.Episode] || emb[g.GoalEpisode] != emb[g.Episode] || g.GoalEpisode == g.Episode {
+			t.Errorf("%s (%s) step %d: negative from %s (%s %s)", g.Episode, split[g.Episode], g.Step, g.GoalEpisode, emb[g.GoalEpisode], split[g.GoalEpisode])
+		}
+	}
+	for _, e := range eps {
+		if gotPer[e.id()] != wantPer[e.id()] {
+			t.Errorf("%s: %d negatives, want %d", e.id(), gotPer[e.id()], wantPer[e.id()])
+		}
+	}
+	// Determinism: the same draw again.
+	again, _ := goalsStageRun(t, cfg, eps)
+	if !reflect.DeepEqual(goals, again) {
+		t.Errorf("a second run drew other goals")
 	}
 }
