@@ -26,7 +26,7 @@ const showUsage = `Usage:
   hindcast show VERSION [--json]
 
 Flags:
-  -json
+  --json
     	print the answer as JSON
 `
 
@@ -90,13 +90,13 @@ Usage:
   hindcast run --config FILE [--version V] [--parallel N]
 
 Flags:
-  -config string
+  --config string
     	config file (YAML, see configs/)
-  -cpuprofile string
+  --cpuprofile string
     	write a CPU profile (runtime/pprof) to this file
-  -parallel int
+  --parallel int
     	work items processed at once (never changes the output) (default %d)
-  -version string
+  --version string
     	version to commit (default: UTC time YYYYMMDDTHHMMSSZ)
 `, runtime.NumCPU())
 	if code != exitOK || out != wantRun || errOut != "" {
