@@ -1028,13 +1028,13 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 		case s.DuplicateOf != nil:
 			ew.printf("  a duplicate of %s: it contributed no frames\n", *s.DuplicateOf)
 		case len(r.Files) == 0:
-			ew.printf("  %d lines, no frame kept in any file\n", s.Lines)
+			ew.printf("  %s, no frame kept in any file\n", trCount(s.Lines, "line", "lines"))
 		default:
 			frames := 0
 			for _, e := range r.Episodes {
 				frames += len(e.Steps)
 			}
-			ew.printf("  %d lines, %d frames kept in %d episodes\n", s.Lines, frames, len(r.Episodes))
+			ew.printf("  %s, %s kept in %s\n", trCount(s.Lines, "line", "lines"), trCount(int64(frames), "frame", "frames"), trCount(int64(len(r.Episodes)), "episode", "episodes"))
 		}
 	case TraceKindEpisode:
 		ew.printf("episode %s\n", r.Query.Episode)
