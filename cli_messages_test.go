@@ -292,7 +292,7 @@ func TestOpenVersionSaysWhatTheLocationIs(t *testing.T) {
 // rate of 0.
 func TestProgressLine(t *testing.T) {
 	p := &progress{stage: "ingest", items: 12, done: 3, frames: 50_000, start: time.Now().Add(-10 * time.Second)}
-	if got := p.describe(); !strings.HasPrefix(got, "ingest   3/12 objects, ") || !strings.HasSuffix(got, " frames/s") {
+	if got := p.describe(); !strings.HasPrefix(got, "ingest   3/12 objects, ") || !strings.Contains(got, " frames/s, ") || !strings.HasSuffix(got, " MB/s read") {
 		t.Errorf("ingest line %q", got)
 	}
 	p = &progress{stage: "goals", items: 8, done: 5, start: time.Now().Add(-time.Second)}
