@@ -40,6 +40,7 @@ type progress struct {
 	reused        int
 	frames, bytes int64
 	imageBytes    int64 // image objects read by ingest, beside the log bytes
+	kept          int64 // frames kept by ingest, duplicate objects not counted
 	totalBytes    int64
 	start         time.Time
 	bar           *progressbar.ProgressBar
@@ -48,7 +49,7 @@ type progress struct {
 func (p *progress) StageStart(name string, items int, bytes int64) {
 	p.mu.Lock()
 	defer p.mu.Unlock()
-	p.stage, p.items, p.done, p.reused, p.frames, p.bytes, p.imageBytes, p.totalBytes, p.start = name, items, 0, 0, 0, 0, 0, bytes, time.Now()
+	p.stage, p.items, p.done, p.reused, p.frames, p.bytes, p.imageBytes, p.kept, p.totalBytes, p.start = name, items, 0, 0, 0, 0, 0, 0, bytes, time.Now()
 	if p.ui.tty {
 		// Ingest is measured in bytes read (its ETA), later stages in items.
 		total := int64(items)
@@ -92,6 +93,15 @@ func (p *progress) ImageRead(n int64) {
 	p.mu.Lock()
 	defer p.mu.Unlock()
 	p.imageBytes += n
+}
+
+// KeptFrames takes the frames a stage kept, known once its items are
+// sealed: ingest's stage-end "frames" counts these, as the funnel does,
+// while "frames_read" counts every frame read, duplicate objects included.
+func (p *progress) KeptFrames(stage string, n int64) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.kept = n
 }
 
 // setDescription changes the bar's text without drawing it: the next Add
@@ -138,7 +148,14 @@ func (p *progress) StageEnd(name string) {
 		fmt.Fprintf(p.ui.w, "%-8s %d items (%d reused) in %.2fs\n", name, p.items, p.reused, secs)
 		p.bar = nil
 	}
-	p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "frames", p.frames, "bytes", p.bytes, "image_bytes", p.imageBytes, "seconds", secs)
+	if name != pipeline.StageIngest {
+		// Only ingest counts frames and bytes as it goes; zeros for the
+		// later stages would read as "nothing was processed".
+		p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "seconds", secs)
+		return
+	}
+	p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "frames", p.kept, "frames_read", p.frames,
+		"bytes", p.bytes, "image_bytes", p.imageBytes, "seconds", secs)
 }
 
 func humanCount(v float64) string {

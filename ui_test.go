@@ -54,3 +54,28 @@ func TestProgressReadRateCountsImages(t *testing.T) {
 		t.Errorf("ingest line %q, want a read rate of 5.0 MB/s", d)
 	}
 }
+
+// TestStageEndLogCounts: ingest's stage-end log names the kept frames
+// (duplicate objects not counted) beside the frames read; later stages,
+// which count neither frames nor bytes, log neither.
+func TestStageEndLogCounts(t *testing.T) {
+	var b bytes.Buffer
+	u := &ui{w: io.Discard, tty: false, log: slog.New(slog.NewJSONHandler(&b, nil))}
+	p := &progress{ui: u}
+	p.StageStart(pipeline.StageIngest, 2, 300)
+	p.Advance(pipeline.StageIngest, 12, 300) // 6 frames of an object and 6 of its duplicate
+	p.KeptFrames(pipeline.StageIngest, 6)
+	p.StageEnd(pipeline.StageIngest)
+	p.StageStart(pipeline.StageEpisodes, 1, 0)
+	p.StageEnd(pipeline.StageEpisodes)
+	lines := strings.Split(strings.TrimSpace(b.String()), "\n")
+	if len(lines) != 4 {
+		t.Fatalf("%d log lines, want 4:\n%s", len(lines), b.String())
+	}
+	if !strings.Contains(lines[1], `"frames":6,"frames_read":12,"bytes":300,`) {
+		t.Errorf("ingest stage end: %s", lines[1])
+	}
+	if strings.Contains(lines[3], `"frames"`) || strings.Contains(lines[3], `"bytes"`) {
+		t.Errorf("episodes stage end logs counts it does not keep: %s", lines[3])
+	}
+}

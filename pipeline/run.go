@@ -369,7 +369,29 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 	if err := g.Wait(); err != nil {
 		return nil, 0, err
 	}
+	if kf, ok := env.Progress.(keptFrames); ok && st.Name() == StageIngest {
+		// The frames ingest reported as it read include those of duplicate
+		// objects, which the manifest does not count; the stage's end names
+		// the kept frames of the first copy of each object, as the funnel does.
+		srcs, err := Sources(sealed)
+		if err != nil {
+			return nil, 0, err
+		}
+		var n int64
+		for _, s := range srcs {
+			if s.DuplicateOf == "" {
+				n += s.Kept
+			}
+		}
+		kf.KeptFrames(st.Name(), n)
+	}
 	return sealed, int(reused.Load()), nil
+}
+
+// keptFrames is the part of a progress display that takes a stage's kept
+// frames once its items are sealed (see runItems).
+type keptFrames interface {
+	KeptFrames(stage string, n int64)
 }
 
 // LoadSealed returns an item's summary when its completion record exists and
