@@ -93,7 +93,11 @@ func Report(v *pipeline.Version, w io.Writer) error {
 
 	for _, emb := range rpSortedKeys(m.Stats) {
 		st := m.Stats[emb]
-		p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "obs", st.Obs), rpRangePlot(emb, "act", st.Act))
+		p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "obs", st.Obs))
+		// An observation-only embodiment has no actions: no empty plot.
+		if st.Act.Count > 0 && len(st.Act.Mean) > 0 {
+			p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "act", st.Act))
+		}
 	}
 	if err := rpTemplate.Execute(w, &p); err != nil {
 		return fmt.Errorf("report: writing HTML: %w", err)
@@ -1006,12 +1010,23 @@ func rpRangePlot(emb, vec string, st pipeline.VectorStats) template.HTML {
 		f.axes(s)
 		return s.html()
 	}
-	lo, hi := math.Inf(1), math.Inf(-1)
-	for i := 0; i < d; i++ {
-		lo = min(lo, st.Min[i], st.Mean[i]-st.Std[i])
-		hi = max(hi, st.Max[i], st.Mean[i]+st.Std[i])
+	// Each dimension is drawn in its own units of standard deviation from
+	// its mean, so that one 0–100 dimension does not flatten the others on
+	// a shared axis; the tooltips keep the raw values.
+	z := func(i int, v float64) float64 {
+		sd := st.Std[i]
+		if sd <= 0 || math.IsNaN(sd) {
+			sd = 1 // a constant dimension: every value is its mean
+		}
+		return (v - st.Mean[i]) / sd
 	}
-	s.heading(title, fmt.Sprintf("train split, %s rows · bar: min–max · dot: mean · whisker: ± std", rpInt(st.Count)))
+	lo, hi := -1.0, 1.0
+	for i := 0; i < d; i++ {
+		lo = min(lo, z(i, st.Min[i]))
+		hi = max(hi, z(i, st.Max[i]))
+	}
+	s.heading(title, fmt.Sprintf("train split, %s rows · per dimension, in standard deviations from its mean · bar: min–max · dot: mean · whisker: ± std", rpInt(st.Count)))
+	f.YLabel = "(value − mean) / std"
 	f.X0, f.X1 = -0.5, float64(d)-0.5
 	f.XTicks = rpIntTicks(0, d-1, 12)
 	f.YTicks, f.Y0, f.Y1 = rpTicks(lo, hi, 6, rpNumLabel)
@@ -1021,10 +1036,10 @@ func rpRangePlot(emb, vec string, st pipeline.VectorStats) template.HTML {
 	for i := 0; i < d; i++ {
 		x := f.X(float64(i))
 		tip := fmt.Sprintf("%s[%d]: min %s, max %s, mean %s ± %s", vec, i, rpG(st.Min[i]), rpG(st.Max[i]), rpG(st.Mean[i]), rpG(st.Std[i]))
-		top, bottom := f.Y(st.Max[i]), f.Y(st.Min[i])
+		top, bottom := f.Y(z(i, st.Max[i])), f.Y(z(i, st.Min[i]))
 		s.rect(x-bw/2, top, bw, max(bottom-top, 1), "#c6d4e6", tip)
-		s.coloredLine(x, f.Y(st.Mean[i]-st.Std[i]), x, f.Y(st.Mean[i]+st.Std[i]), "#1f3b5c", 2.5)
-		s.circle(x, f.Y(st.Mean[i]), 3.2, "#e15759", tip)
+		s.coloredLine(x, f.Y(-1), x, f.Y(1), "#1f3b5c", 2.5)
+		s.circle(x, f.Y(0), 3.2, "#e15759", tip)
 	}
 	return s.html()
 }
@@ -1207,7 +1222,7 @@ var rpTemplate = template.Must(template.New("report").Parse(`<!DOCTYPE html>
 {{end}}</div>
 
 <footer>
-hindcast report of {{.M.Dataset}}/{{.M.Version}} · plot check: <pre id="plot-check">not run</pre>
+hindcast report of {{.M.Dataset}}/{{.M.Version}}<pre id="plot-check" hidden>not run</pre>
 </footer>
 </main>
 <script>{{.Script}}</script>
