@@ -749,21 +749,48 @@ type rpStackRow struct {
 	Total  int64
 }
 
-// rpSourcePrefix is the first path segment of a source key, or the whole
-// key when it has none.
-func rpSourcePrefix(key string) string {
-	if before, _, ok := strings.Cut(key, "/"); ok {
-		return before
+// rpSourcePrefix is the first depth folder segments of a source key, or the
+// whole key when it lies in fewer folders.
+func rpSourcePrefix(key string, depth int) string {
+	seg := strings.Split(key, "/")
+	if len(seg)-1 < depth {
+		return key
 	}
-	return key
+	return strings.Join(seg[:depth], "/")
+}
+
+// rpSourceDepth is the shallowest folder depth whose prefixes tell the
+// sources apart: with every object under 2026/, the first segment would put
+// them all in one bar. When no folder depth separates them (one folder),
+// each object is its own group.
+func rpSourceDepth(keys []string) int {
+	maxDepth := 0
+	for _, k := range keys {
+		maxDepth = max(maxDepth, strings.Count(k, "/"))
+	}
+	for d := 1; d <= maxDepth; d++ {
+		seen := map[string]bool{}
+		for _, k := range keys {
+			seen[rpSourcePrefix(k, d)] = true
+		}
+		if len(seen) > 1 {
+			return d
+		}
+	}
+	return maxDepth + 1
 }
 
 // rpDropsBySource draws dropped lines per source prefix, stacked by reason.
 func rpDropsBySource(m *pipeline.Manifest) template.HTML {
 	byPrefix := map[string]*rpStackRow{}
 	objects := map[string]int{}
+	keys := make([]string, 0, len(m.Sources))
 	for _, src := range m.Sources {
-		p := rpSourcePrefix(src.Key)
+		keys = append(keys, src.Key)
+	}
+	depth := rpSourceDepth(keys)
+	for _, src := range m.Sources {
+		p := rpSourcePrefix(src.Key, depth)
 		if byPrefix[p] == nil {
 			byPrefix[p] = &rpStackRow{Label: p, Counts: map[string]int64{}}
 		}

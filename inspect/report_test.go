@@ -629,11 +629,13 @@ func TestReportDemo(t *testing.T) {
 		dropped map[string]int64
 	}
 	prefixes := map[string]*agg{}
+	var keys []string
 	for _, s := range m.Sources {
-		p := s.Key
-		if i := strings.IndexByte(p, '/'); i >= 0 {
-			p = p[:i]
-		}
+		keys = append(keys, s.Key)
+	}
+	depth := rpSourceDepth(keys)
+	for _, s := range m.Sources {
+		p := rpSourcePrefix(s.Key, depth)
 		if prefixes[p] == nil {
 			prefixes[p] = &agg{dropped: map[string]int64{}}
 		}

@@ -39,3 +39,23 @@ func TestTraceSourceSingular(t *testing.T) {
 		t.Errorf("trace text:\n%s\nwant \"1 line, 1 frame kept in 1 episode\"", b.String())
 	}
 }
+
+// TestRpSourceDepth: drops are grouped at the shallowest folder depth that
+// separates the sources, not always the first segment.
+func TestRpSourceDepth(t *testing.T) {
+	for _, c := range []struct {
+		keys []string
+		want int
+		one  string // the group of keys[0]
+	}{
+		{[]string{"2026/12/01/u1/a.jsonl", "2026/12/02/u2/b.jsonl", "2026/12/02/u3/c.jsonl"}, 3, "2026/12/01"},
+		{[]string{"a/x.jsonl", "b/y.jsonl"}, 1, "a"},
+		{[]string{"logs/x.jsonl", "logs/y.jsonl"}, 2, "logs/x.jsonl"},
+		{[]string{"top.jsonl"}, 1, "top.jsonl"},
+	} {
+		d := rpSourceDepth(c.keys)
+		if d != c.want || rpSourcePrefix(c.keys[0], d) != c.one {
+			t.Errorf("%q: depth %d, group %q; want %d, %q", c.keys, d, rpSourcePrefix(c.keys[0], d), c.want, c.one)
+		}
+	}
+}
