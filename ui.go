@@ -95,7 +95,8 @@ func (p *progress) ImageRead(n int64) {
 	p.imageBytes += n
 }
 
-// KeptFrames takes the frames a stage kept, known once its items are
+// KeptFrames takes the frames a stage kept in the items this run read
+// (not reused), known once its items are
 // sealed: ingest's stage-end "frames" counts these, as the funnel does,
 // while "frames_read" counts every frame read, duplicate objects included.
 func (p *progress) KeptFrames(stage string, n int64) {

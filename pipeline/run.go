@@ -312,6 +312,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 		defer env.Progress.StageEnd(st.Name())
 	}
 	sealed := make([]Sealed, len(items))
+	wasReused := make([]bool, len(items)) // each index written by its own goroutine
 	var reused atomic.Int64
 	g, gctx := errgroup.WithContext(ctx)
 	g.SetLimit(max(1, env.Parallel))
@@ -335,6 +336,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			}
 			if wasSealed {
 				reused.Add(1)
+				wasReused[i] = true
 				sealed[i] = Sealed{Item: it, Summary: sum}
 				if env.Progress != nil {
 					env.Progress.ItemDone(st.Name(), true)
@@ -372,14 +374,15 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 	if kf, ok := env.Progress.(keptFrames); ok && st.Name() == StageIngest {
 		// The frames ingest reported as it read include those of duplicate
 		// objects, which the manifest does not count; the stage's end names
-		// the kept frames of the first copy of each object, as the funnel does.
+		// the kept frames of the first copy of each object this run read
+		// (reused items were not read), as the funnel counts them.
 		srcs, err := Sources(sealed)
 		if err != nil {
 			return nil, 0, err
 		}
 		var n int64
-		for _, s := range srcs {
-			if s.DuplicateOf == "" {
+		for i, s := range srcs {
+			if s.DuplicateOf == "" && !wasReused[i] {
 				n += s.Kept
 			}
 		}
