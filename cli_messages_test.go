@@ -193,7 +193,7 @@ func TestSummaryReadsWell(t *testing.T) {
 	m.Funnel.Objects = 1
 	var b bytes.Buffer
 	printSummary(&b, m, "file:///out/d/v1/")
-	for _, want := range []string{"\nsources   1 object (0 duplicate)\n", "\nfiles     0\n"} {
+	for _, want := range []string{"\nsources   1 object (0 duplicates)\n", "\nfiles     0\n"} {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("summary lacks %q:\n%s", want, b.String())
 		}
@@ -202,7 +202,7 @@ func TestSummaryReadsWell(t *testing.T) {
 	m.Files = []pipeline.File{{Table: "frames", Bytes: 2e6}, {Table: "pairs", Bytes: 1e6}}
 	b.Reset()
 	printSummary(&b, m, "file:///out/d/v1/")
-	for _, want := range []string{"\nsources   2 objects (0 duplicate)\n", "\nfiles     2 (1 frames, 1 pairs), 3.0 MB\n"} {
+	for _, want := range []string{"\nsources   2 objects (0 duplicates)\n", "\nfiles     2 (1 frames, 1 pairs), 3.0 MB\n"} {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("summary lacks %q:\n%s", want, b.String())
 		}

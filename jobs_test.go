@@ -4,7 +4,7 @@ package main
 // would reject, or a command line that hindcast would reject, fails only on
 // the cluster, at night; these tests move that failure here. The Kubernetes
 // kinds are parsed strictly into the Kubernetes API types (k8s.io/api), the
-// Argo CronWorkflow is checked field by field, every container's command
+// Argo CronWorkflow strictly into Argo's own types (argo-workflows v3), every container's command
 // line goes through hindcast's own parser with its placeholders filled in,
 // and the command lines are run, in the DAG's order, on a small local fleet.
 

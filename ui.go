@@ -175,7 +175,7 @@ func humanCount(v float64) string {
 func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
 	f := m.Funnel
 	fmt.Fprintf(w, "\ndataset %s version %s\n", m.Dataset, m.Version)
-	fmt.Fprintf(w, "sources   %s (%d duplicate)\n", countOf(f.Objects, "object", "objects"), f.DuplicateObjects)
+	fmt.Fprintf(w, "sources   %s (%s)\n", countOf(f.Objects, "object", "objects"), countOf(f.DuplicateObjects, "duplicate", "duplicates"))
 	fmt.Fprintf(w, "lines     %d\n", f.Lines)
 	fmt.Fprintf(w, "frames    %d kept (%s)\n", f.Frames, share(f.Frames, f.Lines))
 	var dropped int64
