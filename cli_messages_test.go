@@ -26,7 +26,7 @@ const showUsage = `Usage:
   hindcast show VERSION [--json]
 
 Flags:
-  -json
+  --json
     	print the answer as JSON
 `
 
@@ -90,17 +90,17 @@ Usage:
   hindcast run --config FILE [--version V] [--parallel N]
 
 Flags:
-  -baseline string
+  --baseline string
     	version the drift gate compares with (default: gates.baseline, else the latest version)
-  -config string
+  --config string
     	config file (YAML, see configs/)
-  -cpuprofile string
+  --cpuprofile string
     	write a CPU profile (runtime/pprof) to this file
-  -parallel int
+  --parallel int
     	work items processed at once (never changes the output) (default %d)
-  -version string
+  --version string
     	version to commit (default: UTC time YYYYMMDDTHHMMSSZ)
-  -waive gate
+  --waive gate
     	publish even when this quality gate fails (repeatable; recorded as waived)
 `, runtime.NumCPU())
 	if code != exitOK || out != wantRun || errOut != "" {
@@ -197,7 +197,7 @@ func TestSummaryReadsWell(t *testing.T) {
 	m.Funnel.Objects = 1
 	var b bytes.Buffer
 	printSummary(&b, m, "file:///out/d/v1/")
-	for _, want := range []string{"\nsources   1 object (0 duplicate)\n", "\nfiles     0\n"} {
+	for _, want := range []string{"\nsources   1 object (0 duplicates)\n", "\nfiles     0\n"} {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("summary lacks %q:\n%s", want, b.String())
 		}
@@ -206,7 +206,7 @@ func TestSummaryReadsWell(t *testing.T) {
 	m.Files = []pipeline.File{{Table: "frames", Bytes: 2e6}, {Table: "pairs", Bytes: 1e6}}
 	b.Reset()
 	printSummary(&b, m, "file:///out/d/v1/")
-	for _, want := range []string{"\nsources   2 objects (0 duplicate)\n", "\nfiles     2 (1 frames, 1 pairs), 3.0 MB\n"} {
+	for _, want := range []string{"\nsources   2 objects (0 duplicates)\n", "\nfiles     2 (1 frames, 1 pairs), 3.0 MB\n"} {
 		if !strings.Contains(b.String(), want) {
 			t.Errorf("summary lacks %q:\n%s", want, b.String())
 		}
@@ -296,7 +296,7 @@ func TestOpenVersionSaysWhatTheLocationIs(t *testing.T) {
 // rate of 0.
 func TestProgressLine(t *testing.T) {
 	p := &progress{stage: "ingest", items: 12, done: 3, frames: 50_000, start: time.Now().Add(-10 * time.Second)}
-	if got := p.describe(); !strings.HasPrefix(got, "ingest   3/12 objects, ") || !strings.HasSuffix(got, " frames/s") {
+	if got := p.describe(); !strings.HasPrefix(got, "ingest   3/12 objects, ") || !strings.Contains(got, " frames/s, ") || !strings.HasSuffix(got, " MB/s read") {
 		t.Errorf("ingest line %q", got)
 	}
 	p = &progress{stage: "goals", items: 8, done: 5, start: time.Now().Add(-time.Second)}

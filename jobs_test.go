@@ -4,7 +4,7 @@ package main
 // would reject, or a command line that hindcast would reject, fails only on
 // the cluster, at night; these tests move that failure here. The Kubernetes
 // kinds are parsed strictly into the Kubernetes API types (k8s.io/api), the
-// Argo CronWorkflow is checked field by field, every container's command
+// Argo CronWorkflow strictly into Argo's own types (argo-workflows v3), every container's command
 // line goes through hindcast's own parser with its placeholders filled in,
 // and the command lines are run, in the DAG's order, on a small local fleet.
 
@@ -30,6 +30,8 @@ import (
 	rbacv1 "k8s.io/api/rbac/v1"
 	"k8s.io/apimachinery/pkg/api/resource"
 	k8syaml "sigs.k8s.io/yaml"
+
+	wfv1 "github.com/argoproj/argo-workflows/v3/pkg/apis/workflow/v1alpha1"
 
 	"hindcast/pipeline"
 )
@@ -168,8 +170,14 @@ func TestJobsManifestsParseStrictly(t *testing.T) {
 			jobsStrict(t, d, &o)
 			meta.APIVersion, meta.Kind, meta.Name = o.APIVersion, o.Kind, o.Name
 		case "argoproj.io/v1alpha1 CronWorkflow":
-			// No Go types of Argo here: TestJobsNightlyWorkflow checks it.
-			continue
+			// Argo's own Go types (argo-workflows v3.7.3); the DAG and
+			// command lines are checked by TestJobsNightlyWorkflow.
+			var o wfv1.CronWorkflow
+			jobsStrict(t, d, &o)
+			meta.APIVersion, meta.Kind, meta.Name = o.APIVersion, o.Kind, o.Name
+			if len(o.Spec.WorkflowSpec.Templates) == 0 {
+				t.Errorf("%s: CronWorkflow %s has no templates", d.where, o.Name)
+			}
 		default:
 			t.Errorf("%s: %s %s is not a kind these tests know; add a strict check for it", d.where, d.apiVersion, d.kind)
 			continue
@@ -190,6 +198,25 @@ func TestJobsManifestsParseStrictly(t *testing.T) {
 	}
 	if !reflect.DeepEqual(got, want) {
 		t.Errorf("jobs/ holds %v, want %v", got, want)
+	}
+}
+
+// TestJobsCronWorkflowStrictRejects: Argo's types with the strict parse
+// reject a misspelt field of the CronWorkflow spec.
+func TestJobsCronWorkflowStrictRejects(t *testing.T) {
+	d := jobsFind(t, jobsDocs(t), "CronWorkflow", "hindcast-nightly")
+	var ok wfv1.CronWorkflow
+	if err := k8syaml.UnmarshalStrict(d.raw, &ok); err != nil {
+		t.Fatalf("CronWorkflow: %v", err)
+	}
+	old := []byte("\nspec:\n")
+	if !bytes.Contains(d.raw, old) {
+		t.Fatalf("the CronWorkflow has no %q", old)
+	}
+	bad := bytes.Replace(d.raw, old, []byte("\nspec:\n  concurrencyPolicyz: Forbid\n"), 1)
+	var o wfv1.CronWorkflow
+	if err := k8syaml.UnmarshalStrict(bad, &o); err == nil {
+		t.Errorf("UnmarshalStrict accepted the CronWorkflow with a misspelt spec field")
 	}
 }
 

@@ -89,7 +89,7 @@ type commandSpec struct {
 
 // commandOrder is the order of the commands in the top-level usage: the
 // pipeline first, then inspection, then the tools.
-var commandOrder = []string{"run", "stage", "commit", "plan", "show", "trace", "verify", "diff", "report", "demo", "bench"}
+var commandOrder = []string{"run", "stage", "commit", "plan", "show", "trace", "verify", "diff", "report", "demo", "bench", "version"}
 
 func commands() map[string]commandSpec {
 	gates := func(fs *flag.FlagSet, c *Command) {
@@ -172,6 +172,7 @@ func commands() map[string]commandSpec {
 			fs.StringVar(&c.Bucket, "s3-bucket", "hindcast-bench", "bucket the fleet is uploaded to, under logs/, with --s3-endpoint")
 			parallel(fs, c)
 		}},
+		"version": {"version", "print hindcast's release, commit and Go version", func(fs *flag.FlagSet, c *Command) {}},
 	}
 }
 
@@ -201,7 +202,37 @@ func writeCommandUsage(w io.Writer, name string, summary bool) {
 	fs := flag.NewFlagSet("hindcast "+name, flag.ContinueOnError)
 	fs.SetOutput(w)
 	spec.flags(fs, &Command{})
-	fs.PrintDefaults()
+	printFlags(w, fs)
+}
+
+// printFlags lists a command's flags with two dashes, as README and every
+// example write them (the flag package accepts both, but its own
+// PrintDefaults shows one). Defaults are shown unless they are the zero value.
+func printFlags(w io.Writer, fs *flag.FlagSet) {
+	n := 0
+	fs.VisitAll(func(f *flag.Flag) {
+		n++
+		name, usage := flag.UnquoteUsage(f)
+		dash := "--"
+		if len(f.Name) == 1 {
+			dash = "-" // a one-letter flag keeps one dash, as in -o
+		}
+		line := "  " + dash + f.Name
+		if name != "" {
+			line += " " + name
+		}
+		line += "\n    \t" + strings.ReplaceAll(usage, "\n", "\n    \t")
+		if d := f.DefValue; d != "" && d != "0" && d != "false" && d != "-1" {
+			if name == "string" {
+				d = strconv.Quote(d)
+			}
+			line += fmt.Sprintf(" (default %s)", d)
+		}
+		fmt.Fprintln(w, line)
+	})
+	if n == 0 {
+		fmt.Fprintln(w, "  (none)")
+	}
 }
 
 // ParseCommand parses a hindcast command line (without the program name).
@@ -359,6 +390,8 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		err = demoCommand(ctx, c, stdout, ui)
 	case "bench":
 		err = benchCommand(ctx, c, stdout, ui)
+	case "version":
+		err = versionCommand(stdout)
 	}
 	if err == nil {
 		return exitOK
@@ -375,10 +408,42 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	return exitRuntime
 }
 
+// Build stamps set by the linker, for builds without VCS information (a
+// container build from a copied tree, -buildvcs=false):
+//
+//	go build -ldflags "-X main.buildVersion=0.1.0 -X main.buildCommit=$(git rev-parse HEAD)"
+//
+// They are package variables only because -X can set nothing else; nothing
+// writes them at run time.
+var (
+	buildVersion string
+	buildCommit  string
+)
+
+// toolInfo names the running build: the release (ToolVersion, or the
+// linker's buildVersion when set) and the commit, taken from the VCS stamp
+// of the binary, else from the linker's buildCommit, else "unknown".
 func toolInfo() pipeline.ToolInfo {
+	return toolInfoFrom(readBuildInfo(), buildVersion, buildCommit)
+}
+
+func readBuildInfo() *debug.BuildInfo {
+	bi, ok := debug.ReadBuildInfo()
+	if !ok {
+		return nil
+	}
+	return bi
+}
+
+// toolInfoFrom is toolInfo with its inputs given, so that every fallback
+// can be tested.
+func toolInfoFrom(bi *debug.BuildInfo, version, commit string) pipeline.ToolInfo {
 	t := pipeline.ToolInfo{Version: pipeline.ToolVersion, Commit: "unknown"}
+	if version != "" {
+		t.Version = version
+	}
 	modified := false
-	if bi, ok := debug.ReadBuildInfo(); ok {
+	if bi != nil {
 		for _, s := range bi.Settings {
 			switch {
 			case s.Key == "vcs.revision" && s.Value != "":
@@ -388,11 +453,26 @@ func toolInfo() pipeline.ToolInfo {
 			}
 		}
 	}
+	if t.Commit == "unknown" && commit != "" {
+		t.Commit = commit
+	}
 	// A build from an edited tree is not that commit's code.
 	if modified && t.Commit != "unknown" {
 		t.Commit += "+modified"
 	}
 	return t
+}
+
+// versionCommand prints the tool's release, commit and Go version, one per
+// line, so that a script can read them and a person can paste them.
+func versionCommand(w io.Writer) error {
+	t := toolInfo()
+	goVersion := runtime.Version()
+	if bi := readBuildInfo(); bi != nil && bi.GoVersion != "" {
+		goVersion = bi.GoVersion
+	}
+	_, err := fmt.Fprintf(w, "hindcast %s\ncommit %s\ngo %s %s/%s\n", t.Version, t.Commit, goVersion, runtime.GOOS, runtime.GOARCH)
+	return err
 }
 
 // runConfig loads the config and runs the pipeline on it.

@@ -122,8 +122,13 @@ func TestHelpExits0(t *testing.T) {
 				t.Errorf("%q: help does not start with the command's summary and usage:\n%s", args, text)
 			}
 			fs.VisitAll(func(f *flag.Flag) {
-				if !strings.Contains(text, "\n  -"+f.Name+" ") && !strings.Contains(text, "\n  -"+f.Name+"\n") {
-					t.Errorf("%q: usage does not list -%s:\n%s", args, f.Name, text)
+				// Two dashes as README writes them; a one-letter flag keeps one (-o).
+				dashed := "--" + f.Name
+				if len(f.Name) == 1 {
+					dashed = "-" + f.Name
+				}
+				if !strings.Contains(text, "\n  "+dashed+" ") && !strings.Contains(text, "\n  "+dashed+"\n") {
+					t.Errorf("%q: usage does not list %s:\n%s", args, dashed, text)
 				}
 			})
 		}

@@ -39,6 +39,8 @@ type progress struct {
 	items, done   int
 	reused        int
 	frames, bytes int64
+	imageBytes    int64 // image objects read by ingest, beside the log bytes
+	kept          int64 // frames kept by ingest, duplicate objects not counted
 	totalBytes    int64
 	start         time.Time
 	bar           *progressbar.ProgressBar
@@ -47,7 +49,7 @@ type progress struct {
 func (p *progress) StageStart(name string, items int, bytes int64) {
 	p.mu.Lock()
 	defer p.mu.Unlock()
-	p.stage, p.items, p.done, p.reused, p.frames, p.bytes, p.totalBytes, p.start = name, items, 0, 0, 0, 0, bytes, time.Now()
+	p.stage, p.items, p.done, p.reused, p.frames, p.bytes, p.imageBytes, p.kept, p.totalBytes, p.start = name, items, 0, 0, 0, 0, 0, 0, bytes, time.Now()
 	if p.ui.tty {
 		// Ingest is measured in bytes read (its ETA), later stages in items.
 		total := int64(items)
@@ -71,16 +73,43 @@ func (p *progress) StageStart(name string, items int, bytes int64) {
 }
 
 func (p *progress) describe() string {
-	rate := 0.0
+	rate, read := 0.0, 0.0
 	if s := time.Since(p.start).Seconds(); s > 0 {
 		rate = float64(p.frames) / s
+		read = float64(p.bytes+p.imageBytes) / s
 	}
 	if p.stage != pipeline.StageIngest {
 		// Only ingest counts frames as it goes; the later stages' unit of
 		// progress is the partition.
 		return fmt.Sprintf("%-8s %d/%d partitions", p.stage, p.done, p.items)
 	}
-	return fmt.Sprintf("%-8s %d/%d objects, %s frames/s", p.stage, p.done, p.items, humanCount(rate))
+	return fmt.Sprintf("%-8s %d/%d objects, %s frames/s, %.1f MB/s read", p.stage, p.done, p.items, humanCount(rate), read/1e6)
+}
+
+// ImageRead counts the bytes of an image object ingest read, so that the
+// read rate covers every byte fetched, not only the logs'. It is not part of
+// pipeline.Progress: the stage finds it by an interface check.
+func (p *progress) ImageRead(n int64) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.imageBytes += n
+}
+
+// KeptFrames takes the frames a stage kept in the items this run read
+// (not reused), known once its items are
+// sealed: ingest's stage-end "frames" counts these, as the funnel does,
+// while "frames_read" counts every frame read, duplicate objects included.
+func (p *progress) KeptFrames(stage string, n int64) {
+	p.mu.Lock()
+	defer p.mu.Unlock()
+	p.kept = n
+}
+
+// setDescription changes the bar's text without drawing it: the next Add
+// draws text and count together, so the line never shows the new count
+// beside the old percentage.
+func (p *progress) setDescription() {
+	progressbar.OptionSetDescription(p.describe())(p.bar)
 }
 
 func (p *progress) Advance(name string, frames, bytes int64) {
@@ -89,7 +118,7 @@ func (p *progress) Advance(name string, frames, bytes int64) {
 	p.frames += frames
 	p.bytes += bytes
 	if p.bar != nil && name == pipeline.StageIngest && p.totalBytes > 0 {
-		p.bar.Describe(p.describe())
+		p.setDescription()
 		p.bar.Add64(bytes)
 	}
 }
@@ -102,9 +131,11 @@ func (p *progress) ItemDone(name string, reused bool) {
 		p.reused++
 	}
 	if p.bar != nil {
-		p.bar.Describe(p.describe())
+		p.setDescription()
 		if !(name == pipeline.StageIngest && p.totalBytes > 0) {
 			p.bar.Add(1)
+		} else {
+			p.bar.Describe(p.describe())
 		}
 	}
 }
@@ -118,7 +149,14 @@ func (p *progress) StageEnd(name string) {
 		fmt.Fprintf(p.ui.w, "%-8s %d items (%d reused) in %.2fs\n", name, p.items, p.reused, secs)
 		p.bar = nil
 	}
-	p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "frames", p.frames, "bytes", p.bytes, "seconds", secs)
+	if name != pipeline.StageIngest {
+		// Only ingest counts frames and bytes as it goes; zeros for the
+		// later stages would read as "nothing was processed".
+		p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "seconds", secs)
+		return
+	}
+	p.ui.log.Info("stage end", "stage", name, "items", p.items, "reused", p.reused, "frames", p.kept, "frames_read", p.frames,
+		"bytes", p.bytes, "image_bytes", p.imageBytes, "seconds", secs)
 }
 
 func humanCount(v float64) string {
@@ -137,7 +175,7 @@ func humanCount(v float64) string {
 func printSummary(w io.Writer, m *pipeline.Manifest, where string) {
 	f := m.Funnel
 	fmt.Fprintf(w, "\ndataset %s version %s\n", m.Dataset, m.Version)
-	fmt.Fprintf(w, "sources   %s (%d duplicate)\n", countOf(f.Objects, "object", "objects"), f.DuplicateObjects)
+	fmt.Fprintf(w, "sources   %s (%s)\n", countOf(f.Objects, "object", "objects"), countOf(f.DuplicateObjects, "duplicate", "duplicates"))
 	fmt.Fprintf(w, "lines     %d\n", f.Lines)
 	fmt.Fprintf(w, "frames    %d kept (%s)\n", f.Frames, share(f.Frames, f.Lines))
 	var dropped int64

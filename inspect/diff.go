@@ -419,7 +419,15 @@ func (r *DiffResult) WriteText(w io.Writer) error {
 		p.table(1, []string{"reason", "a", "b", "delta"}, rows)
 	}
 
-	p.printf("\nsplits: %s\n", dfDiffer(len(r.Splits), "split"))
+	// r.Splits ends with the "total" row when anything differs; it is not
+	// a split of its own.
+	nSplits := 0
+	for _, sp := range r.Splits {
+		if sp.Split != "total" {
+			nSplits++
+		}
+	}
+	p.printf("\nsplits: %s\n", dfDiffer(nSplits, "split"))
 	if len(r.Splits) > 0 {
 		rows := [][]string{}
 		for _, sp := range r.Splits {

@@ -94,7 +94,11 @@ func Report(v *pipeline.Version, w io.Writer) error {
 
 	for _, emb := range rpSortedKeys(m.Stats) {
 		st := m.Stats[emb]
-		p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "obs", st.Obs), rpRangePlot(emb, "act", st.Act))
+		p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "obs", st.Obs))
+		// An observation-only embodiment has no actions: no empty plot.
+		if st.Act.Count > 0 && len(st.Act.Mean) > 0 {
+			p.StatPlots = append(p.StatPlots, rpRangePlot(emb, "act", st.Act))
+		}
 	}
 	if err := rpTemplate.Execute(w, &p); err != nil {
 		return fmt.Errorf("report: writing HTML: %w", err)
@@ -777,21 +781,48 @@ type rpStackRow struct {
 	Total  int64
 }
 
-// rpSourcePrefix is the first path segment of a source key, or the whole
-// key when it has none.
-func rpSourcePrefix(key string) string {
-	if before, _, ok := strings.Cut(key, "/"); ok {
-		return before
+// rpSourcePrefix is the first depth folder segments of a source key, or the
+// whole key when it lies in fewer folders.
+func rpSourcePrefix(key string, depth int) string {
+	seg := strings.Split(key, "/")
+	if len(seg)-1 < depth {
+		return key
 	}
-	return key
+	return strings.Join(seg[:depth], "/")
+}
+
+// rpSourceDepth is the shallowest folder depth whose prefixes tell the
+// sources apart: with every object under 2026/, the first segment would put
+// them all in one bar. When no folder depth separates them (one folder),
+// each object is its own group.
+func rpSourceDepth(keys []string) int {
+	maxDepth := 0
+	for _, k := range keys {
+		maxDepth = max(maxDepth, strings.Count(k, "/"))
+	}
+	for d := 1; d <= maxDepth; d++ {
+		seen := map[string]bool{}
+		for _, k := range keys {
+			seen[rpSourcePrefix(k, d)] = true
+		}
+		if len(seen) > 1 {
+			return d
+		}
+	}
+	return maxDepth + 1
 }
 
 // rpDropsBySource draws dropped lines per source prefix, stacked by reason.
 func rpDropsBySource(m *pipeline.Manifest) template.HTML {
 	byPrefix := map[string]*rpStackRow{}
 	objects := map[string]int{}
+	keys := make([]string, 0, len(m.Sources))
 	for _, src := range m.Sources {
-		p := rpSourcePrefix(src.Key)
+		keys = append(keys, src.Key)
+	}
+	depth := rpSourceDepth(keys)
+	for _, src := range m.Sources {
+		p := rpSourcePrefix(src.Key, depth)
 		if byPrefix[p] == nil {
 			byPrefix[p] = &rpStackRow{Label: p, Counts: map[string]int64{}}
 		}
@@ -1038,12 +1069,23 @@ func rpRangePlot(emb, vec string, st pipeline.VectorStats) template.HTML {
 		f.axes(s)
 		return s.html()
 	}
-	lo, hi := math.Inf(1), math.Inf(-1)
-	for i := 0; i < d; i++ {
-		lo = min(lo, st.Min[i], st.Mean[i]-st.Std[i])
-		hi = max(hi, st.Max[i], st.Mean[i]+st.Std[i])
+	// Each dimension is drawn in its own units of standard deviation from
+	// its mean, so that one 0–100 dimension does not flatten the others on
+	// a shared axis; the tooltips keep the raw values.
+	z := func(i int, v float64) float64 {
+		sd := st.Std[i]
+		if sd <= 0 || math.IsNaN(sd) {
+			sd = 1 // a constant dimension: every value is its mean
+		}
+		return (v - st.Mean[i]) / sd
 	}
-	s.heading(title, fmt.Sprintf("train split, %s rows · bar: min–max · dot: mean · whisker: ± std", rpInt(st.Count)))
+	lo, hi := -1.0, 1.0
+	for i := 0; i < d; i++ {
+		lo = min(lo, z(i, st.Min[i]))
+		hi = max(hi, z(i, st.Max[i]))
+	}
+	s.heading(title, fmt.Sprintf("train split, %s rows · per dimension, in standard deviations from its mean · bar: min–max · dot: mean · whisker: ± std", rpInt(st.Count)))
+	f.YLabel = "(value − mean) / std"
 	f.X0, f.X1 = -0.5, float64(d)-0.5
 	f.XTicks = rpIntTicks(0, d-1, 12)
 	f.YTicks, f.Y0, f.Y1 = rpTicks(lo, hi, 6, rpNumLabel)
@@ -1053,10 +1095,10 @@ func rpRangePlot(emb, vec string, st pipeline.VectorStats) template.HTML {
 	for i := 0; i < d; i++ {
 		x := f.X(float64(i))
 		tip := fmt.Sprintf("%s[%d]: min %s, max %s, mean %s ± %s", vec, i, rpG(st.Min[i]), rpG(st.Max[i]), rpG(st.Mean[i]), rpG(st.Std[i]))
-		top, bottom := f.Y(st.Max[i]), f.Y(st.Min[i])
+		top, bottom := f.Y(z(i, st.Max[i])), f.Y(z(i, st.Min[i]))
 		s.rect(x-bw/2, top, bw, max(bottom-top, 1), "#c6d4e6", tip)
-		s.coloredLine(x, f.Y(st.Mean[i]-st.Std[i]), x, f.Y(st.Mean[i]+st.Std[i]), "#1f3b5c", 2.5)
-		s.circle(x, f.Y(st.Mean[i]), 3.2, "#e15759", tip)
+		s.coloredLine(x, f.Y(-1), x, f.Y(1), "#1f3b5c", 2.5)
+		s.circle(x, f.Y(0), 3.2, "#e15759", tip)
 	}
 	return s.html()
 }
@@ -1247,7 +1289,7 @@ var rpTemplate = template.Must(template.New("report").Parse(`<!DOCTYPE html>
 {{end}}</div>
 
 <footer>
-hindcast report of {{.M.Dataset}}/{{.M.Version}} · plot check: <pre id="plot-check">not run</pre>
+hindcast report of {{.M.Dataset}}/{{.M.Version}}<pre id="plot-check" hidden>not run</pre>
 </footer>
 </main>
 <script>{{.Script}}</script>

@@ -347,7 +347,7 @@ func (r *ShowResult) WriteText(w io.Writer) error {
 	p.printf("digest    %s\n", r.Digest)
 
 	s := r.Sources
-	p.printf("\nsources   %s, %s, %d duplicate, %d incomplete\n", trCount(s.Objects, "object", "objects"), shBytes(s.Bytes), s.Duplicates, s.Incomplete)
+	p.printf("\nsources   %s, %s, %s, %d incomplete\n", trCount(s.Objects, "object", "objects"), shBytes(s.Bytes), trCount(s.Duplicates, "duplicate", "duplicates"), s.Incomplete)
 	for _, k := range s.IncompleteKeys {
 		p.printf("  incomplete %s\n", k)
 	}

@@ -1047,13 +1047,13 @@ func (r *TraceResult) WriteText(w io.Writer) error {
 		case s.Skipped != "":
 			ew.printf("  a recording skipped as %s: it contributed no frames\n", s.Skipped)
 		case len(r.Files) == 0:
-			ew.printf("  %d %s, no frame kept in any file\n", s.Lines, lines)
+			ew.printf("  %s, no frame kept in any file\n", trCount(s.Lines, strings.TrimSuffix(lines, "s"), lines))
 		default:
 			frames := 0
 			for _, e := range r.Episodes {
 				frames += len(e.Steps)
 			}
-			ew.printf("  %d %s, %d frames kept in %d episodes\n", s.Lines, lines, frames, len(r.Episodes))
+			ew.printf("  %s, %s kept in %s\n", trCount(s.Lines, strings.TrimSuffix(lines, "s"), lines), trCount(int64(frames), "frame", "frames"), trCount(int64(len(r.Episodes)), "episode", "episodes"))
 		}
 	case TraceKindEpisode:
 		ew.printf("episode %s\n", r.Query.Episode)

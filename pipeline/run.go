@@ -312,6 +312,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 		defer env.Progress.StageEnd(st.Name())
 	}
 	sealed := make([]Sealed, len(items))
+	wasReused := make([]bool, len(items)) // each index written by its own goroutine
 	var reused atomic.Int64
 	g, gctx := errgroup.WithContext(ctx)
 	g.SetLimit(max(1, env.Parallel))
@@ -335,6 +336,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			}
 			if wasSealed {
 				reused.Add(1)
+				wasReused[i] = true
 				sealed[i] = Sealed{Item: it, Summary: sum}
 				if env.Progress != nil {
 					env.Progress.ItemDone(st.Name(), true)
@@ -369,7 +371,30 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 	if err := g.Wait(); err != nil {
 		return nil, 0, err
 	}
+	if kf, ok := env.Progress.(keptFrames); ok && st.Name() == StageIngest {
+		// The frames ingest reported as it read include those of duplicate
+		// objects, which the manifest does not count; the stage's end names
+		// the kept frames of the first copy of each object this run read
+		// (reused items were not read), as the funnel counts them.
+		srcs, err := Sources(sealed)
+		if err != nil {
+			return nil, 0, err
+		}
+		var n int64
+		for i, s := range srcs {
+			if s.DuplicateOf == "" && !wasReused[i] {
+				n += s.Kept
+			}
+		}
+		kf.KeptFrames(st.Name(), n)
+	}
 	return sealed, int(reused.Load()), nil
+}
+
+// keptFrames is the part of a progress display that takes a stage's kept
+// frames once its items are sealed (see runItems).
+type keptFrames interface {
+	KeptFrames(stage string, n int64)
 }
 
 // LoadSealed returns an item's summary when its completion record exists and

@@ -113,6 +113,11 @@ func (fe *imageFetcher) fetch(ctx context.Context, ref string) ([]byte, error) {
 	if len(b) > maxImageBytes {
 		return nil, errCorrupt
 	}
+	// The live read rate counts image bytes too, when the progress
+	// display takes them.
+	if ir, ok := fe.env.Progress.(interface{ ImageRead(n int64) }); ok {
+		ir.ImageRead(int64(len(b)))
+	}
 	return b, nil
 }
 
