@@ -258,7 +258,7 @@ func recMessages(c *codecs, p *recPlan, chans []channel) ([]recMessage, error) {
 			case bad && p.fault == faultOutOfRange:
 				v[0] = 1.5
 			}
-			return appendVector([]byte(`{"velocity":`), v), nil
+			return append(appendVector([]byte(`{"velocity":`), v), '}'), nil
 		})
 		var img bytes.Buffer
 		periodic(topicCamera, cameraPeriod, func(off int64, s float64) ([]byte, error) {
