@@ -188,6 +188,11 @@ func (c *codecs) benchRecording(path, unit string, start int64, rng *rand.Rand, 
 	if err := w.write(recMessage{ch: 5, t: start, data: []byte(`{"name":"pick tote to bin"}`)}); err != nil {
 		return 0, 0, err
 	}
+	// The end event and outcome stand at the last camera frame, the last
+	// tick of BenchRecordingConfig's clock (SPEC §7.3), written in time order
+	// after the messages of that time.
+	lastCam := (end - 1) / cameraPeriod * cameraPeriod
+	endMsgs := []recMessage{{ch: 4, t: start + lastCam, data: []byte(`{"kind":"end"}`)}, {ch: 6, t: start + lastCam, data: []byte(`{"ok":true}`)}}
 	var frames int64
 	pos, vel := make([]float64, 7), make([]float64, 7)
 	names := []string{"j0", "j1", "j2", "j3", "j4", "j5", "gripper"}
@@ -201,6 +206,14 @@ func (c *codecs) benchRecording(path, unit string, start int64, rng *rand.Rand, 
 			}
 		}
 		off := next[ch]
+		if off > lastCam && endMsgs != nil {
+			for _, m := range endMsgs {
+				if err := w.write(m); err != nil {
+					return 0, 0, err
+				}
+			}
+			endMsgs = nil
+		}
 		if off >= end {
 			break
 		}
@@ -236,11 +249,6 @@ func (c *codecs) benchRecording(path, unit string, start int64, rng *rand.Rand, 
 			return 0, 0, fmt.Errorf("fleet: encoding %s of %s: %w", chans[ch].topic, path, err)
 		}
 		if err := w.write(recMessage{ch: ch, t: t, data: data}); err != nil {
-			return 0, 0, err
-		}
-	}
-	for _, m := range []recMessage{{ch: 4, t: start + end - 1, data: []byte(`{"kind":"end"}`)}, {ch: 6, t: start + end - 1, data: []byte(`{"ok":true}`)}} {
-		if err := w.write(m); err != nil {
 			return 0, 0, err
 		}
 	}

@@ -56,8 +56,8 @@ func TestBenchRecordings(t *testing.T) {
 		t.Fatalf("%d bytes on disk, reported %d (%v)", len(data), size, err)
 	}
 	rb := read(t, data)
-	if rb.err != nil || len(rb.faults) != 0 {
-		t.Fatalf("err %v, damaged %v", rb.err, rb.faults)
+	if rb.err != nil || len(rb.faults) != 0 || rb.behind != 0 {
+		t.Fatalf("err %v, damaged %v, %d out of time order", rb.err, rb.faults, rb.behind)
 	}
 	want := map[string]int{
 		topicJoints: perSecs(jointsPeriod, benchRecSecs), topicPose: perSecs(posePeriod, benchRecSecs),

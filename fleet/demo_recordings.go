@@ -192,7 +192,14 @@ func recMessages(c *codecs, p *recPlan, chans []channel) ([]recMessage, error) {
 	add := func(topic string, off int64, data []byte) {
 		msgs = append(msgs, recMessage{ch: idx[topic], t: p.start + off, data: data})
 	}
-	end := int64(p.secs)*int64(time.Second) - 1
+	// The end event and outcome stand at the last tick (picker6 ticks every
+	// 100 ms, cart2 on each odometry message), so they fall in a tick's
+	// label window (SPEC §7.3).
+	last := int64(100_000_000)
+	if p.emb == cart2 {
+		last = odomPeriod
+	}
+	end := int64(p.secs)*int64(time.Second) - last
 	add(topicEvent, 0, []byte(`{"kind":"start"}`))
 	add(topicTask, 0, []byte(`{"name":"`+taskName(p)+`"}`))
 	var err error

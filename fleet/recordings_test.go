@@ -36,6 +36,7 @@ type readBack struct {
 	counts map[string]int // messages per topic
 	faults map[string]int // fault name → damaged messages found by decoding
 	meta   map[string]string
+	behind int // messages whose log_time is before the previous message's
 	err    error // the error that ended reading, if any
 }
 
@@ -56,6 +57,7 @@ func read(t *testing.T, data []byte) readBack {
 	ros := map[uint16]*ros2msg.Schema{}
 	pb := map[uint16]protoreflect.MessageDescriptor{}
 	buf := make([]byte, 1<<20)
+	var prev uint64
 	for {
 		tok, rec, err := lex.Next(buf)
 		if err != nil {
@@ -114,6 +116,10 @@ func read(t *testing.T, data []byte) readBack {
 			if err != nil {
 				t.Fatal(err)
 			}
+			if m.LogTime < prev {
+				rb.behind++
+			}
+			prev = m.LogTime
 			c := channels[m.ChannelID]
 			rb.counts[c.Topic]++
 			rb.classify(t, c, m.Data, ros[c.ID], pb[c.ID])
@@ -248,8 +254,8 @@ func TestDemoRecordings(t *testing.T) {
 			}
 			continue
 		}
-		if rb.err != nil {
-			t.Errorf("%s: %v", p.key, rb.err)
+		if rb.err != nil || rb.behind != 0 {
+			t.Errorf("%s: %v, %d messages out of time order", p.key, rb.err, rb.behind)
 			continue
 		}
 		for topic, n := range wantCounts(p) {
