@@ -113,8 +113,10 @@ func demoRecordings() []recPlan {
 		return p
 	}
 	plans := []recPlan{
-		p6(0, 1, "lark-p6-101", 9, zstdOpt),
-		p6(0, 2, "lark-p6-101", 9, lz4Opt),
+		// lark-p6-001 and lark-c2-001 also log JSON Lines: their frames from
+		// both kinds meet in the episodes stage (SPEC §7).
+		p6(0, 1, "lark-p6-001", 9, zstdOpt),
+		p6(0, 2, "lark-p6-001", 9, lz4Opt),
 		p6(1, 1, "lark-p6-102", 10, rawOpt),
 		p6(1, 2, "lark-p6-102", 10, flat),
 		with(p6(1, 3, "lark-p6-103", 11, zstdOpt), faultStale, topicCamera, 5*sec, 7*sec),
@@ -129,7 +131,7 @@ func demoRecordings() []recPlan {
 		with(p6(3, 4, "lark-p6-107", 9, zstdOpt), faultUnreadable, "", 0, 0),
 		with(p6(3, 5, "lark-p6-108", 9, zstdOpt), faultNoUnit, "", 0, 0),
 		with(p6(3, 6, "lark-p7-101", 9, zstdOpt), faultUnknownModel, "", 0, 0),
-		c2(0, 1, "lark-c2-101", 13, zstdOpt),
+		c2(0, 1, "lark-c2-001", 13, zstdOpt),
 		c2(1, 1, "lark-c2-102", 13, lz4Opt),
 		with(c2(2, 1, "lark-c2-103", 14, zstdOpt), faultStale, topicDrive, 12*sec, 13*sec),
 		with(c2(2, 2, "lark-c2-103", 14, zstdOpt), faultUndecodable, topicDrive, 20*sec, 21*sec),

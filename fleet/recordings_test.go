@@ -8,6 +8,8 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
+	"strings"
 	"testing"
 
 	"github.com/foxglove/mcap/go/mcap"
@@ -16,6 +18,7 @@ import (
 	"google.golang.org/protobuf/reflect/protoreflect"
 	"google.golang.org/protobuf/types/descriptorpb"
 	"google.golang.org/protobuf/types/dynamicpb"
+	"gopkg.in/yaml.v3"
 
 	"hindcast/stages/recording/ros2msg"
 )
@@ -36,7 +39,7 @@ type readBack struct {
 	counts map[string]int // messages per topic
 	faults map[string]int // fault name → damaged messages found by decoding
 	meta   map[string]string
-	behind int // messages whose log_time is before the previous message's
+	behind int   // messages whose log_time is before the previous message's
 	err    error // the error that ended reading, if any
 }
 
@@ -299,5 +302,89 @@ func TestDemoRecordings(t *testing.T) {
 		if err != nil || !bytes.Equal(b, data) {
 			t.Errorf("%s differs between two runs (err %v)", key, err)
 		}
+	}
+}
+
+// The recording config reads every frame topic the generator writes, with
+// lengths that add up to the embodiments' obs and act (SPEC §7.3), and keeps
+// the JSON Lines part of the demo config as it is.
+func TestDemoRecordingConfig(t *testing.T) {
+	var c struct {
+		Source struct {
+			Include []string `yaml:"include"`
+		} `yaml:"source"`
+		Embodiments map[string]struct {
+			Obs, Act int
+			Frames   struct {
+				Rate    float64 `yaml:"rate"`
+				Clock   string  `yaml:"clock"`
+				MaxAge  string  `yaml:"max_age"`
+				Obs     []struct{ Topic, Field string }
+				Act     []struct{ Topic, Field string }
+				Cameras map[string]struct{ Topic, Field string }
+			} `yaml:"frames"`
+		} `yaml:"embodiments"`
+		Recordings map[string]any `yaml:"recordings"`
+	}
+	cfg := demoRecordingConfig()
+	if err := yaml.Unmarshal([]byte(cfg), &c); err != nil {
+		t.Fatal(err)
+	}
+	if !slices.Contains(c.Source.Include, "**/*.mcap") || len(c.Recordings) != 3 {
+		t.Errorf("include %v, recordings %v", c.Source.Include, c.Recordings)
+	}
+	// Values per field: JointState.position holds 7, "position[0:3]" 3,
+	// the command's velocity 7, Odometry.state 5, throttle and steer 1 each.
+	width := map[string]int{topicJoints + " position": 7, topicPose + " position[0:3]": 3, topicCommand + " velocity": 7,
+		topicOdom + " state": 5, topicDrive + " throttle": 1, topicDrive + " steer": 1}
+	codecs, err := newCodecs()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, emb := range []string{picker6, cart2} {
+		e := c.Embodiments[emb]
+		topics := map[string]bool{}
+		for _, ch := range recChannels(codecs, emb) {
+			topics[ch.topic] = true
+		}
+		obs, act := 0, 0
+		for _, s := range e.Frames.Obs {
+			obs += width[s.Topic+" "+s.Field]
+			if !topics[s.Topic] {
+				t.Errorf("%s: obs topic %s not recorded", emb, s.Topic)
+			}
+		}
+		for _, s := range e.Frames.Act {
+			act += width[s.Topic+" "+s.Field]
+			if !topics[s.Topic] {
+				t.Errorf("%s: act topic %s not recorded", emb, s.Topic)
+			}
+		}
+		for _, s := range e.Frames.Cameras {
+			if !topics[s.Topic] || s.Field != "data" {
+				t.Errorf("%s: camera %v not recorded", emb, s)
+			}
+		}
+		if obs != e.Obs || act != e.Act || (e.Frames.Rate == 0) == (e.Frames.Clock == "") {
+			t.Errorf("%s: frames give obs %d act %d (want %d, %d), rate %v clock %q", emb, obs, act, e.Obs, e.Act, e.Frames.Rate, e.Frames.Clock)
+		}
+	}
+	// Removing what was added gives back the JSON Lines config.
+	back := strings.Replace(cfg, `, "**/*.mcap"]`, "]", 1)
+	for _, cut := range []string{"    frames:\n", "recordings:\n"} {
+		for {
+			i := strings.Index(back, cut)
+			if i < 0 {
+				break
+			}
+			j := i + len(cut)
+			for j < len(back) && (strings.HasPrefix(back[j:], "      ") || strings.HasPrefix(back[j:], "  ") && cut == "recordings:\n") {
+				j += strings.IndexByte(back[j:], '\n') + 1
+			}
+			back = back[:i] + back[j:]
+		}
+	}
+	if back != demoConfig {
+		t.Errorf("the recording config changes the JSON Lines part:\n%s", back)
 	}
 }
