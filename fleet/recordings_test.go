@@ -20,6 +20,7 @@ import (
 	"google.golang.org/protobuf/types/dynamicpb"
 	"gopkg.in/yaml.v3"
 
+	"hindcast/pipeline"
 	"hindcast/stages/recording/ros2msg"
 )
 
@@ -346,6 +347,18 @@ func TestDemoRecordingConfig(t *testing.T) {
 		topics := map[string]bool{}
 		for _, ch := range recChannels(codecs, emb) {
 			topics[ch.topic] = true
+		}
+		var paths []string
+		for _, s := range append(append([]struct{ Topic, Field string }{}, e.Frames.Obs...), e.Frames.Act...) {
+			paths = append(paths, s.Field)
+		}
+		for _, s := range e.Frames.Cameras {
+			paths = append(paths, s.Field)
+		}
+		for _, p := range paths {
+			if _, err := pipeline.ParseFieldPath(p); err != nil {
+				t.Errorf("%s: field path %q: %v", emb, p, err)
+			}
 		}
 		obs, act := 0, 0
 		for _, s := range e.Frames.Obs {
