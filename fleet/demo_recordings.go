@@ -127,7 +127,7 @@ func demoRecordings() []recPlan {
 		with(p6(2, 4, "lark-p6-105", 10, zstdOpt), faultImage, topicCamera, 8*sec, 10*sec),
 		with(p6(3, 1, "lark-p6-106", 9, zstdOpt), faultUndecodable, topicJoints, 6*sec, 6*sec+500_000_000),
 		with(p6(3, 2, "lark-p6-106", 9, zstdOpt), faultCut, "", 0, 0),
-		with(p6(3, 3, "lark-p6-107", 9, zstdOpt), faultBadChunk, "", 0, 0),
+		with(p6(3, 3, "lark-p6-107", 9, rawOpt), faultBadChunk, "", 0, 0),
 		with(p6(3, 4, "lark-p6-107", 9, zstdOpt), faultUnreadable, "", 0, 0),
 		with(p6(3, 5, "lark-p6-108", 9, zstdOpt), faultNoUnit, "", 0, 0),
 		with(p6(3, 6, "lark-p7-101", 9, zstdOpt), faultUnknownModel, "", 0, 0),
