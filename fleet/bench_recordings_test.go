@@ -79,3 +79,17 @@ func TestBenchRecordings(t *testing.T) {
 		t.Errorf("two runs differ (%v)", err)
 	}
 }
+
+// BenchmarkBenchRecordings times writing one two-minute benchmark recording
+// (about 29 MB), the JPEG pool encoded first included; MB/s is recording
+// bytes written.
+func BenchmarkBenchRecordings(b *testing.B) {
+	dir := b.TempDir()
+	for b.Loop() {
+		_, _, n, err := BenchRecordings(dir, BenchRecordingOptions{Bytes: 1, Seed: 1})
+		if err != nil {
+			b.Fatal(err)
+		}
+		b.SetBytes(n)
+	}
+}
