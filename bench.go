@@ -93,6 +93,9 @@ func benchCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) err
 	if err != nil {
 		return err
 	}
+	if c.Recordings {
+		return benchRecordings(ctx, c, dir, stdout, ui)
+	}
 	logs := filepath.Join(dir, "logs")
 	stamp := filepath.Join(dir, "fleet.json")
 	var meta struct {
@@ -263,4 +266,63 @@ func prepareS3Bench(ctx context.Context, dir, logs, endpoint, bucket string, std
 		"storage:\n  endpoint: " + endpoint + "\n"
 	path := filepath.Join(dir, "bench-s3.yaml")
 	return path, os.WriteFile(path, []byte(cfg), 0o644)
+}
+
+// benchRecordings writes (or reuses) a fault-free recording fleet of
+// c.RecordingMB megabytes under dir/recordings and times whole runs over it:
+// recording MB/s, ticks/s and the children's peak RSS (getrusage), the figures
+// SPEC §7's reader is judged by.
+func benchRecordings(ctx context.Context, c *Command, dir string, stdout io.Writer, ui *ui) error {
+	root := filepath.Join(dir, "recordings")
+	logs := filepath.Join(root, "logs")
+	stamp := filepath.Join(root, "fleet.json")
+	var meta struct {
+		MB, Recordings int
+		Ticks, Bytes   int64
+	}
+	if b, err := os.ReadFile(stamp); err == nil && json.Unmarshal(b, &meta) == nil && meta.MB == c.RecordingMB {
+		fmt.Fprintf(stdout, "reusing recording fleet in %s (%d recordings, %.1f MB)\n", logs, meta.Recordings, float64(meta.Bytes)/1e6)
+	} else {
+		os.RemoveAll(logs)
+		start := time.Now()
+		n, ticks, size, err := fleet.BenchRecordings(logs, fleet.BenchRecordingOptions{Bytes: int64(c.RecordingMB) * 1e6, Seed: 1})
+		if err != nil {
+			return fmt.Errorf("write recording fleet: %w", err)
+		}
+		meta.MB, meta.Recordings, meta.Ticks, meta.Bytes = c.RecordingMB, n, ticks, size
+		b, _ := json.Marshal(meta)
+		if err := os.WriteFile(stamp, b, 0o644); err != nil {
+			return fmt.Errorf("write %s: %w", stamp, err)
+		}
+		fmt.Fprintf(stdout, "wrote recording fleet: %d recordings, %d ticks, %.1f MB in %.1fs\n", n, ticks, float64(size)/1e6, time.Since(start).Seconds())
+	}
+	cfgPath := filepath.Join(root, "bench.yaml")
+	if err := os.WriteFile(cfgPath, []byte(fleet.BenchRecordingConfig), 0o644); err != nil {
+		return fmt.Errorf("write %s: %w", cfgPath, err)
+	}
+	self, err := os.Executable()
+	if err != nil {
+		return err
+	}
+	var walls []time.Duration
+	var rss int64
+	for i := range c.Runs {
+		for _, sub := range []string{"work", "datasets"} {
+			os.RemoveAll(filepath.Join(root, sub))
+		}
+		version := "bench-" + strconv.Itoa(i)
+		t, err := timeChild(ctx, ui.w, self, "run", "--config", cfgPath, "--version", version, "--parallel", strconv.Itoa(c.Parallel))
+		if err != nil {
+			return err
+		}
+		walls = append(walls, t.wall)
+		rss = max(rss, t.maxRSS)
+		fmt.Fprintf(stdout, "run %d: hindcast %.2fs, peak RSS %.0f MiB\n", i+1, t.wall.Seconds(), float64(t.maxRSS)/(1<<20))
+	}
+	med := median(walls).Seconds()
+	fmt.Fprintf(stdout, "\nhindcast on recordings, median of %d runs, --parallel %d: %.2fs\n", c.Runs, c.Parallel, med)
+	fmt.Fprintf(stdout, "  recording MB/s %.1f (%.1f MB in %d recordings)\n", float64(meta.Bytes)/1e6/med, float64(meta.Bytes)/1e6, meta.Recordings)
+	fmt.Fprintf(stdout, "  ticks/s        %.0f (%d ticks)\n", float64(meta.Ticks)/med, meta.Ticks)
+	fmt.Fprintf(stdout, "  peak RSS       %.0f MiB (largest of the runs)\n", float64(rss)/(1<<20))
+	return nil
 }

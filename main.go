@@ -61,14 +61,18 @@ type Command struct {
 	Runs     int
 	Peer     string
 	Compress bool
-	Profile  string
-	Endpoint string
-	Bucket   string
-	Stage    string // for "stage": the stage to run
-	Worker   int    // for "stage": this worker's index, 0-based
-	Workers  int    // for "stage": how many workers share the stage
-	JSON     bool
-	Help     bool
+	// Recordings: for "demo", add the MCAP recordings (SPEC §7); for
+	// "bench", time a recording fleet of RecordingMB megabytes instead.
+	Recordings  bool
+	RecordingMB int
+	Profile     string
+	Endpoint    string
+	Bucket      string
+	Stage       string // for "stage": the stage to run
+	Worker      int    // for "stage": this worker's index, 0-based
+	Workers     int    // for "stage": how many workers share the stage
+	JSON        bool
+	Help        bool
 	// Inspection commands: version locations (a local path or a URI), the
 	// trace query, the report's output file.
 	Versions []string
@@ -158,11 +162,12 @@ func commands() map[string]commandSpec {
 		"report": {"report VERSION [-o report.html]", "write one self-contained HTML file with plots of a version", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Output, "o", "report.html", "the HTML file to write")
 		}},
-		"demo": {"demo [--dir DIR]", "write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
+		"demo": {"demo [--dir DIR] [--recordings]", "write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
+			fs.BoolVar(&c.Recordings, "recordings", false, "also write MCAP recordings of both embodiments and read them")
 			parallel(fs, c)
 		}},
-		"bench": {"bench [--frames N] [--runs K] [--peer BIN] [--s3-endpoint URL]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
+		"bench": {"bench [--frames N] [--runs K] [--peer BIN] [--s3-endpoint URL] [--recordings [--recording-mb M]]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/bench", "folder for the benchmark fleet and its outputs")
 			fs.IntVar(&c.Frames, "frames", 1000000, "frames in the benchmark fleet")
 			fs.IntVar(&c.Runs, "runs", 3, "timed runs (the median is reported)")
@@ -170,6 +175,8 @@ func commands() map[string]commandSpec {
 			fs.BoolVar(&c.Compress, "zst", false, "write the fleet as .jsonl.zst objects")
 			fs.StringVar(&c.Endpoint, "s3-endpoint", "", "also time runs reading the fleet from this S3-compatible endpoint (credentials from the AWS environment)")
 			fs.StringVar(&c.Bucket, "s3-bucket", "hindcast-bench", "bucket the fleet is uploaded to, under logs/, with --s3-endpoint")
+			fs.BoolVar(&c.Recordings, "recordings", false, "time a fault-free fleet of MCAP recordings instead (see --recording-mb)")
+			fs.IntVar(&c.RecordingMB, "recording-mb", 1000, "megabytes of recordings with --recordings")
 			parallel(fs, c)
 		}},
 		"version": {"version", "print hindcast's release, commit and Go version", func(fs *flag.FlagSet, c *Command) {}},
@@ -338,6 +345,9 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 		}
 		if c.Frames < 1 {
 			return fail("--frames must be at least 1, got %d", c.Frames)
+		}
+		if c.RecordingMB < 1 {
+			return fail("--recording-mb must be at least 1, got %d", c.RecordingMB)
 		}
 	}
 	return c, nil
@@ -520,7 +530,7 @@ func demoCommand(ctx context.Context, c *Command, stdout io.Writer, ui *ui) erro
 	if err != nil {
 		return err
 	}
-	if err := fleet.Demo(dir); err != nil {
+	if err := fleet.DemoWith(dir, fleet.DemoOptions{Recordings: c.Recordings}); err != nil {
 		return fmt.Errorf("write demo fleet in %s: %w", dir, err)
 	}
 	fmt.Fprintf(stdout, "demo fleet of Larkspur Depot written to %s\n", filepath.Join(dir, "logs"))

@@ -87,7 +87,12 @@ parquet:
 // same bytes; the only bytes that depend on dir are the absolute file:// image
 // URIs of unit lark-p6-004, kept in one plain .jsonl object. Existing files of
 // the same names are overwritten; nothing else under dir is touched.
-func Demo(dir string) error {
+func Demo(dir string) error { return DemoWith(dir, DemoOptions{}) }
+
+// DemoWith is Demo with options; with opt.Recordings it also writes the
+// recordings of demoRecordings under dir/logs/recordings/ and a config that
+// reads them.
+func DemoWith(dir string, opt DemoOptions) error {
 	abs, err := filepath.Abs(dir)
 	if err != nil {
 		return fmt.Errorf("fleet: resolving demo folder %s: %w", dir, err)
@@ -110,7 +115,14 @@ func Demo(dir string) error {
 			return err
 		}
 	}
-	if err := os.WriteFile(filepath.Join(abs, "hindcast.yaml"), []byte(demoConfig), 0o644); err != nil {
+	config := demoConfig
+	if opt.Recordings {
+		if err := writeDemoRecordings(d.logs); err != nil {
+			return err
+		}
+		config = demoRecordingConfig()
+	}
+	if err := os.WriteFile(filepath.Join(abs, "hindcast.yaml"), []byte(config), 0o644); err != nil {
 		return fmt.Errorf("fleet: writing demo config: %w", err)
 	}
 	return nil
