@@ -4,15 +4,17 @@
 // file's index says; damaged files (§7.5) keep every whole record and every
 // whole chunk whose CRC matches; memory is bounded by Options, not by the
 // recording's size.
-//
-// CONTRACT STUB: the signatures below are fixed; the bodies are filled in by
-// the package's own change.
 package mcapread
 
 import (
+	"bufio"
 	"context"
 	"errors"
+	"fmt"
 	"io"
+	"sort"
+
+	"github.com/foxglove/mcap/go/mcap"
 )
 
 // ErrUnreadable means the object does not start with the MCAP magic and a
@@ -85,19 +87,172 @@ type Result struct {
 	Messages int64
 }
 
+// maxChunkBytes bounds a chunk's declared uncompressed size; a bigger chunk
+// is treated as bad rather than allocated (common practice).
+const maxChunkBytes = 1 << 30
+
 // CheckHeader returns ErrUnreadable unless src starts with the magic and a
 // whole Header record.
-func CheckHeader(ctx context.Context, src Source) error { return ErrUnreadable }
+func CheckHeader(ctx context.Context, src Source) error {
+	rc, err := src.Open(ctx, 0)
+	if err != nil {
+		return fmt.Errorf("mcap header: %w", err)
+	}
+	defer rc.Close()
+	lx, err := mcap.NewLexer(bufio.NewReader(rc), &mcap.LexerOptions{MaxRecordSize: maxChunkBytes})
+	if err != nil {
+		return ErrUnreadable
+	}
+	tok, rec, err := lx.Next(nil)
+	if err != nil || tok != mcap.TokenHeader {
+		return ErrUnreadable
+	}
+	if _, err := mcap.ParseHeader(rec); err != nil {
+		return ErrUnreadable
+	}
+	return nil
+}
 
 // FindMetadata returns the first Metadata record named name (in file order)
 // as its key/value map, or found=false.
 func FindMetadata(ctx context.Context, src Source, name string) (md map[string]string, found bool, err error) {
-	return nil, false, errors.New("mcapread: not implemented")
+	rc, err := src.Open(ctx, 0)
+	if err != nil {
+		return nil, false, fmt.Errorf("mcap metadata %q: %w", name, err)
+	}
+	defer rc.Close()
+	lx, err := mcap.NewLexer(bufio.NewReader(rc), lexOpts())
+	if err != nil {
+		return nil, false, ErrUnreadable
+	}
+	var buf []byte
+	for {
+		if err := ctx.Err(); err != nil {
+			return nil, false, err
+		}
+		tok, rec, err := lx.Next(buf)
+		if err != nil {
+			return nil, false, nil
+		}
+		if cap(rec) > cap(buf) {
+			buf = rec
+		}
+		if tok == mcap.TokenMetadata {
+			m, err := mcap.ParseMetadata(rec)
+			if err == nil && m.Name == name {
+				return m.Metadata, true, nil
+			}
+		}
+		if tok == mcap.TokenFooter {
+			return nil, false, nil
+		}
+	}
+}
+
+func lexOpts() *mcap.LexerOptions {
+	return &mcap.LexerOptions{
+		ValidateChunkCRCs:        true,
+		EmitInvalidChunks:        true,
+		MaxDecompressedChunkSize: maxChunkBytes,
+		MaxRecordSize:            maxChunkBytes,
+	}
+}
+
+type held struct {
+	ch   *Channel
+	log  uint64
+	pub  uint64
+	t    int64
+	seq  int64
+	data []byte
 }
 
 // ReadOrdered hands fn every message of the selected topics, in order of
 // Time and then Seq. A damaged file is not an error (Result.Incomplete);
 // an error is a failure to read the store, of the scratch space, or fn's.
 func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message) error) (Result, error) {
-	return Result{}, errors.New("mcapread: not implemented")
+	var res Result
+	rc, err := src.Open(ctx, 0)
+	if err != nil {
+		return res, fmt.Errorf("mcap read: %w", err)
+	}
+	defer rc.Close()
+	var r io.Reader = rc
+	if opts.Tap != nil {
+		r = io.TeeReader(rc, opts.Tap)
+	}
+	br := bufio.NewReaderSize(r, 1<<16)
+	lx, err := mcap.NewLexer(br, lexOpts())
+	if err != nil {
+		return res, ErrUnreadable
+	}
+	schemas := map[uint16]*Schema{}
+	chans := map[uint16]*Channel{}
+	var msgs []held
+	var seq int64
+	var buf []byte
+	for {
+		if err := ctx.Err(); err != nil {
+			return res, err
+		}
+		tok, rec, err := lx.Next(buf)
+		if err != nil {
+			res.Incomplete = true
+			break
+		}
+		if cap(rec) > cap(buf) {
+			buf = rec
+		}
+		if tok == mcap.TokenFooter {
+			break
+		}
+		switch tok {
+		case mcap.TokenInvalidChunk:
+			res.Incomplete = true
+		case mcap.TokenSchema:
+			s, err := mcap.ParseSchema(rec)
+			if err == nil {
+				if _, ok := schemas[s.ID]; !ok {
+					schemas[s.ID] = &Schema{ID: s.ID, Name: s.Name, Encoding: s.Encoding, Data: append([]byte(nil), s.Data...)}
+				}
+			}
+		case mcap.TokenChannel:
+			c, err := mcap.ParseChannel(rec)
+			if err == nil {
+				if _, ok := chans[c.ID]; !ok {
+					chans[c.ID] = &Channel{ID: c.ID, Topic: c.Topic, MessageEncoding: c.MessageEncoding, Schema: schemas[c.SchemaID]}
+				}
+			}
+		case mcap.TokenMessage:
+			m, err := mcap.ParseMessage(rec)
+			if err != nil {
+				res.Incomplete = true
+				continue
+			}
+			ch := chans[m.ChannelID]
+			if ch == nil || (opts.Topics != nil && !opts.Topics(ch.Topic)) {
+				continue
+			}
+			t := m.LogTime
+			if opts.UsePublishTime {
+				t = m.PublishTime
+			}
+			msgs = append(msgs, held{ch: ch, log: m.LogTime, pub: m.PublishTime, t: int64(t), seq: seq, data: append([]byte(nil), m.Data...)})
+			seq++
+		}
+	}
+	if opts.Tap != nil {
+		if _, err := io.Copy(io.Discard, br); err != nil {
+			return res, fmt.Errorf("mcap read to end: %w", err)
+		}
+	}
+	sort.SliceStable(msgs, func(i, j int) bool { return msgs[i].t < msgs[j].t })
+	for i := range msgs {
+		h := &msgs[i]
+		if err := fn(&Message{Channel: h.ch, LogTime: h.log, PublishTime: h.pub, Time: h.t, Seq: h.seq, Data: h.data}); err != nil {
+			return res, err
+		}
+		res.Messages++
+	}
+	return res, nil
 }
