@@ -8,13 +8,18 @@ package mcapread
 
 import (
 	"bufio"
+	"bytes"
 	"context"
+	"encoding/binary"
 	"errors"
 	"fmt"
+	"hash/crc32"
 	"io"
 	"sort"
 
 	"github.com/foxglove/mcap/go/mcap"
+	"github.com/klauspost/compress/zstd"
+	"github.com/pierrec/lz4/v4"
 )
 
 // ErrUnreadable means the object does not start with the MCAP magic and a
@@ -182,56 +187,45 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 		r = io.TeeReader(rc, opts.Tap)
 	}
 	br := bufio.NewReaderSize(r, 1<<16)
-	lx, err := mcap.NewLexer(br, lexOpts())
-	if err != nil {
+	var magic [8]byte
+	if _, err := io.ReadFull(br, magic[:]); err != nil || magic != Magic {
+		if opts.Tap != nil {
+			_, _ = io.Copy(io.Discard, br)
+		}
 		return res, ErrUnreadable
 	}
 	schemas := map[uint16]*Schema{}
 	chans := map[uint16]*Channel{}
 	var msgs []held
 	var seq int64
-	var buf []byte
-	for {
-		if err := ctx.Err(); err != nil {
-			return res, err
-		}
-		tok, rec, err := lx.Next(buf)
-		if err != nil {
-			res.Incomplete = true
-			break
-		}
-		if cap(rec) > cap(buf) {
-			buf = rec
-		}
-		if tok == mcap.TokenFooter {
-			break
-		}
-		switch tok {
-		case mcap.TokenInvalidChunk:
-			res.Incomplete = true
-		case mcap.TokenSchema:
+	// handle takes one whole record; it reports false for a record whose
+	// body does not parse.
+	handle := func(op byte, rec []byte) bool {
+		switch mcap.OpCode(op) {
+		case mcap.OpSchema:
 			s, err := mcap.ParseSchema(rec)
-			if err == nil {
-				if _, ok := schemas[s.ID]; !ok {
-					schemas[s.ID] = &Schema{ID: s.ID, Name: s.Name, Encoding: s.Encoding, Data: append([]byte(nil), s.Data...)}
-				}
+			if err != nil {
+				return false
 			}
-		case mcap.TokenChannel:
+			if _, ok := schemas[s.ID]; !ok {
+				schemas[s.ID] = &Schema{ID: s.ID, Name: s.Name, Encoding: s.Encoding, Data: append([]byte(nil), s.Data...)}
+			}
+		case mcap.OpChannel:
 			c, err := mcap.ParseChannel(rec)
-			if err == nil {
-				if _, ok := chans[c.ID]; !ok {
-					chans[c.ID] = &Channel{ID: c.ID, Topic: c.Topic, MessageEncoding: c.MessageEncoding, Schema: schemas[c.SchemaID]}
-				}
+			if err != nil {
+				return false
 			}
-		case mcap.TokenMessage:
+			if _, ok := chans[c.ID]; !ok {
+				chans[c.ID] = &Channel{ID: c.ID, Topic: c.Topic, MessageEncoding: c.MessageEncoding, Schema: schemas[c.SchemaID]}
+			}
+		case mcap.OpMessage:
 			m, err := mcap.ParseMessage(rec)
 			if err != nil {
-				res.Incomplete = true
-				continue
+				return false
 			}
 			ch := chans[m.ChannelID]
 			if ch == nil || (opts.Topics != nil && !opts.Topics(ch.Topic)) {
-				continue
+				return true
 			}
 			t := m.LogTime
 			if opts.UsePublishTime {
@@ -239,6 +233,62 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 			}
 			msgs = append(msgs, held{ch: ch, log: m.LogTime, pub: m.PublishTime, t: int64(t), seq: seq, data: append([]byte(nil), m.Data...)})
 			seq++
+		}
+		return true
+	}
+	var hdr [9]byte
+	// left is what the object still holds: a length beyond it means a
+	// record cut short, never an allocation of that size.
+	left := src.Size() - 8
+	for {
+		if err := ctx.Err(); err != nil {
+			return res, err
+		}
+		if _, err := io.ReadFull(br, hdr[:]); err != nil {
+			res.Incomplete = true
+			break
+		}
+		left -= 9
+		n := binary.LittleEndian.Uint64(hdr[1:])
+		if n > maxChunkBytes || left < 0 || n > uint64(left) {
+			res.Incomplete = true
+			break
+		}
+		left -= int64(n)
+		rec := make([]byte, n)
+		if _, err := io.ReadFull(br, rec); err != nil {
+			res.Incomplete = true
+			break
+		}
+		op := mcap.OpCode(hdr[0])
+		if op == mcap.OpFooter {
+			break
+		}
+		if op != mcap.OpChunk {
+			if !handle(hdr[0], rec) {
+				res.Incomplete = true
+			}
+			continue
+		}
+		inner, ok := unchunk(rec)
+		if !ok {
+			res.Incomplete = true
+			continue
+		}
+		for p := 0; p < len(inner); {
+			if p+9 > len(inner) {
+				res.Incomplete = true
+				break
+			}
+			l := binary.LittleEndian.Uint64(inner[p+1:])
+			if l > uint64(len(inner)-p-9) {
+				res.Incomplete = true
+				break
+			}
+			if !handle(inner[p], inner[p+9:p+9+int(l)]) {
+				res.Incomplete = true
+			}
+			p += 9 + int(l)
 		}
 	}
 	if opts.Tap != nil {
@@ -255,4 +305,43 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 		res.Messages++
 	}
 	return res, nil
+}
+
+// unchunk returns a chunk's records, decompressed and checked against the
+// chunk's CRC when it is non-zero (MCAP spec, mcap.dev); ok=false for a bad
+// chunk.
+func unchunk(rec []byte) ([]byte, bool) {
+	c, err := mcap.ParseChunk(rec)
+	if err != nil || c.UncompressedSize > maxChunkBytes {
+		return nil, false
+	}
+	var out []byte
+	switch mcap.CompressionFormat(c.Compression) {
+	case mcap.CompressionNone:
+		out = c.Records
+	case mcap.CompressionZSTD:
+		d, err := zstd.NewReader(nil, zstd.WithDecoderConcurrency(1), zstd.WithDecoderMaxMemory(maxChunkBytes))
+		if err != nil {
+			return nil, false
+		}
+		defer d.Close()
+		out, err = d.DecodeAll(c.Records, make([]byte, 0, c.UncompressedSize))
+		if err != nil {
+			return nil, false
+		}
+	case mcap.CompressionLZ4:
+		out = make([]byte, c.UncompressedSize)
+		if _, err := io.ReadFull(lz4.NewReader(bytes.NewReader(c.Records)), out); err != nil {
+			return nil, false
+		}
+	default:
+		return nil, false
+	}
+	if uint64(len(out)) != c.UncompressedSize {
+		return nil, false
+	}
+	if c.UncompressedCRC != 0 && crc32.ChecksumIEEE(out) != c.UncompressedCRC {
+		return nil, false
+	}
+	return out, true
 }

@@ -3,6 +3,8 @@ package mcapread
 import (
 	"bytes"
 	"context"
+	"encoding/binary"
+	"hash/crc32"
 	"io"
 	"testing"
 
@@ -93,6 +95,69 @@ func TestReadOrderedTruncated(t *testing.T) {
 		t.Fatalf("res %+v", res)
 	}
 	if !bytes.Equal(tap.Bytes(), cut) {
+		t.Fatal("tap differs")
+	}
+}
+
+// TestReadOrderedBadChunk flips a byte inside the second chunk's records:
+// its CRC (MCAP spec, mcap.dev: chunk uncompressed_crc) no longer matches, so
+// exactly that chunk's messages are left out and the rest are kept.
+func TestReadOrderedBadChunk(t *testing.T) {
+	f := writeFile(t, 100, true, mcap.CompressionNone)
+	// Find chunk records from record boundaries.
+	type span struct{ start, end int }
+	var chunks []span
+	off := 8
+	for off+9 <= len(f) {
+		op := f[off]
+		n := int(uint64(f[off+1]) | uint64(f[off+2])<<8 | uint64(f[off+3])<<16 | uint64(f[off+4])<<24)
+		if op == byte(mcap.OpChunk) {
+			chunks = append(chunks, span{off, off + 9 + n})
+		}
+		if op == byte(mcap.OpFooter) {
+			break
+		}
+		off += 9 + n
+	}
+	if len(chunks) < 3 {
+		t.Fatalf("%d chunks", len(chunks))
+	}
+	// Count messages per chunk with the library's own chunk parser.
+	countIn := func(s span) int {
+		c, err := mcap.ParseChunk(f[s.start+9 : s.end])
+		if err != nil {
+			t.Fatal(err)
+		}
+		n, p := 0, 0
+		for p < len(c.Records) {
+			l := int(uint64(c.Records[p+1]) | uint64(c.Records[p+2])<<8 | uint64(c.Records[p+3])<<16 | uint64(c.Records[p+4])<<24)
+			if c.Records[p] == byte(mcap.OpMessage) {
+				n++
+			}
+			p += 9 + l
+		}
+		return n
+	}
+	lost := countIn(chunks[1])
+	// The Go writer leaves uncompressed_crc 0 for uncompressed chunks; set
+	// it (MCAP spec, mcap.dev: CRC-32 of the uncompressed records, at byte
+	// 24 of the chunk body) so that the flip below is detectable.
+	c, err := mcap.ParseChunk(f[chunks[1].start+9 : chunks[1].end])
+	if err != nil {
+		t.Fatal(err)
+	}
+	binary.LittleEndian.PutUint32(f[chunks[1].start+9+24:], crc32.ChecksumIEEE(c.Records))
+	bad := append([]byte(nil), f...)
+	bad[chunks[1].end-2] ^= 0xff // inside the last message's payload
+	var tap bytes.Buffer
+	res, err := ReadOrdered(context.Background(), memSource(bad), Options{Tap: &tap}, func(m *Message) error { return nil })
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !res.Incomplete || res.Messages != int64(100-lost) {
+		t.Fatalf("res %+v, want %d messages", res, 100-lost)
+	}
+	if !bytes.Equal(tap.Bytes(), bad) {
 		t.Fatal("tap differs")
 	}
 }
