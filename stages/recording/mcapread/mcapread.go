@@ -104,12 +104,13 @@ func CheckHeader(ctx context.Context, src Source) error {
 		return fmt.Errorf("mcap header: %w", err)
 	}
 	defer rc.Close()
-	lx, err := mcap.NewLexer(bufio.NewReader(rc), &mcap.LexerOptions{MaxRecordSize: maxChunkBytes})
-	if err != nil {
+	br := bufio.NewReader(rc)
+	var magic [8]byte
+	if _, err := io.ReadFull(br, magic[:]); err != nil || magic != Magic {
 		return ErrUnreadable
 	}
-	tok, rec, err := lx.Next(nil)
-	if err != nil || tok != mcap.TokenHeader {
+	op, rec, ok := topRecord(br, src.Size()-8)
+	if !ok || op != mcap.OpHeader {
 		return ErrUnreadable
 	}
 	if _, err := mcap.ParseHeader(rec); err != nil {
@@ -118,48 +119,54 @@ func CheckHeader(ctx context.Context, src Source) error {
 	return nil
 }
 
+// topRecord reads one whole record; ok=false when it is cut short or its
+// length goes beyond the left bytes of the object.
+func topRecord(br *bufio.Reader, left int64) (mcap.OpCode, []byte, bool) {
+	var hdr [9]byte
+	if _, err := io.ReadFull(br, hdr[:]); err != nil {
+		return 0, nil, false
+	}
+	n := binary.LittleEndian.Uint64(hdr[1:])
+	if left < 9 || n > uint64(left-9) || n > maxChunkBytes {
+		return 0, nil, false
+	}
+	rec := make([]byte, n)
+	if _, err := io.ReadFull(br, rec); err != nil {
+		return 0, nil, false
+	}
+	return mcap.OpCode(hdr[0]), rec, true
+}
+
 // FindMetadata returns the first Metadata record named name (in file order)
-// as its key/value map, or found=false.
+// as its key/value map, or found=false. Metadata records sit outside chunks
+// (MCAP spec, mcap.dev), so only top-level records are scanned.
 func FindMetadata(ctx context.Context, src Source, name string) (md map[string]string, found bool, err error) {
 	rc, err := src.Open(ctx, 0)
 	if err != nil {
 		return nil, false, fmt.Errorf("mcap metadata %q: %w", name, err)
 	}
 	defer rc.Close()
-	lx, err := mcap.NewLexer(bufio.NewReader(rc), lexOpts())
-	if err != nil {
+	br := bufio.NewReaderSize(rc, 1<<16)
+	var magic [8]byte
+	if _, err := io.ReadFull(br, magic[:]); err != nil || magic != Magic {
 		return nil, false, ErrUnreadable
 	}
-	var buf []byte
+	left := src.Size() - 8
 	for {
 		if err := ctx.Err(); err != nil {
 			return nil, false, err
 		}
-		tok, rec, err := lx.Next(buf)
-		if err != nil {
+		op, rec, ok := topRecord(br, left)
+		if !ok || op == mcap.OpFooter {
 			return nil, false, nil
 		}
-		if cap(rec) > cap(buf) {
-			buf = rec
-		}
-		if tok == mcap.TokenMetadata {
+		left -= 9 + int64(len(rec))
+		if op == mcap.OpMetadata {
 			m, err := mcap.ParseMetadata(rec)
 			if err == nil && m.Name == name {
 				return m.Metadata, true, nil
 			}
 		}
-		if tok == mcap.TokenFooter {
-			return nil, false, nil
-		}
-	}
-}
-
-func lexOpts() *mcap.LexerOptions {
-	return &mcap.LexerOptions{
-		ValidateChunkCRCs:        true,
-		EmitInvalidChunks:        true,
-		MaxDecompressedChunkSize: maxChunkBytes,
-		MaxRecordSize:            maxChunkBytes,
 	}
 }
 
@@ -200,7 +207,12 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 	var seq int64
 	// handle takes one whole record; it reports false for a record whose
 	// body does not parse.
-	handle := func(op byte, rec []byte) bool {
+	handle := func(op byte, rec []byte) (ok bool) {
+		defer func() {
+			if recover() != nil {
+				ok = false
+			}
+		}()
 		switch mcap.OpCode(op) {
 		case mcap.OpSchema:
 			s, err := mcap.ParseSchema(rec)
@@ -310,12 +322,18 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 // unchunk returns a chunk's records, decompressed and checked against the
 // chunk's CRC when it is non-zero (MCAP spec, mcap.dev); ok=false for a bad
 // chunk.
-func unchunk(rec []byte) ([]byte, bool) {
+func unchunk(rec []byte) (out []byte, ok bool) {
+	// The library's parsers may panic on a corrupt length inside a record;
+	// such a record is a bad chunk.
+	defer func() {
+		if recover() != nil {
+			out, ok = nil, false
+		}
+	}()
 	c, err := mcap.ParseChunk(rec)
 	if err != nil || c.UncompressedSize > maxChunkBytes {
 		return nil, false
 	}
-	var out []byte
 	switch mcap.CompressionFormat(c.Compression) {
 	case mcap.CompressionNone:
 		out = c.Records
