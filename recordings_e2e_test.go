@@ -1,9 +1,3 @@
-//go:build recordings_e2e
-
-// These tests need the MCAP reader (stages/recording) and the recordings
-// config keys (SPEC §7.1, §7.3); until both are in, they build only with
-// -tags recordings_e2e: go test -tags recordings_e2e -run Recordings .
-
 package main
 
 // End-to-end tests of recordings (SPEC §7): small MCAP files written here
