@@ -646,6 +646,7 @@ type manifestDoc struct {
 	Funnel struct {
 		Objects          int64            `json:"objects"`
 		DuplicateObjects int64            `json:"duplicate_objects"`
+		SkippedObjects   map[string]int64 `json:"skipped_objects"`
 		Lines            int64            `json:"lines"`
 		Frames           int64            `json:"frames"`
 		Episodes         int64            `json:"episodes"`
@@ -1182,19 +1183,6 @@ func findVersion(t *testing.T, datasetDir string) string {
 	return filepath.Join(datasetDir, ents[0].Name())
 }
 
-// lineReasons lists the reasons that can drop a JSON Lines line (SPEC
-// §3.1 and §3.2), from the one list of reasons: the demo's logs hold every
-// one of them.
-func lineReasons() []string {
-	var out []string
-	for _, d := range pipeline.ReasonDefs() {
-		if d.Lines {
-			out = append(out, d.Name)
-		}
-	}
-	return out
-}
-
 func TestDemo(t *testing.T) {
 	dir := t.TempDir()
 	out := mustRun(t, "demo", "--dir", dir)
@@ -1208,7 +1196,9 @@ func TestDemo(t *testing.T) {
 			n, _ := strconv.Atoi(mm[2])
 			got[mm[1]] = n
 		}
-		for _, r := range lineReasons() {
+		// With its recordings (on by default) the demo holds every reason,
+		// stale included, and every skip reason.
+		for _, r := range pipeline.Reasons() {
 			if got[r] == 0 {
 				t.Errorf("summary shows %s with count %d, want > 0\n%s", r, got[r], out)
 			}
@@ -1222,6 +1212,15 @@ func TestDemo(t *testing.T) {
 	m, raw := readManifest(t, vdir)
 
 	t.Run("manifest matches the schema", func(t *testing.T) { validateManifest(t, raw) })
+
+	t.Run("every skip reason", func(t *testing.T) {
+		// The demo's recordings hold one of each skip of SPEC §7.1.
+		for _, r := range pipeline.SkipReasons() {
+			if m.Funnel.SkippedObjects[r] != 1 {
+				t.Errorf("skipped_objects[%s] = %d, want 1", r, m.Funnel.SkippedObjects[r])
+			}
+		}
+	})
 
 	t.Run("funnel and sources add up", func(t *testing.T) {
 		// SPEC §5: lines = frames + Σ dropped; per source lines = kept + Σ dropped.
@@ -1277,7 +1276,7 @@ func TestDemo(t *testing.T) {
 			}
 			rel, _ := filepath.Rel(logs, p)
 			key := filepath.ToSlash(rel)
-			if strings.HasSuffix(key, ".jsonl") || strings.HasSuffix(key, ".jsonl.gz") || strings.HasSuffix(key, ".jsonl.zst") {
+			if strings.HasSuffix(key, ".jsonl") || strings.HasSuffix(key, ".jsonl.gz") || strings.HasSuffix(key, ".jsonl.zst") || strings.HasSuffix(key, ".mcap") {
 				b, err := os.ReadFile(p)
 				if err != nil {
 					return err

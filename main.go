@@ -162,9 +162,9 @@ func commands() map[string]commandSpec {
 		"report": {"report VERSION [-o report.html]", "write one self-contained HTML file with plots of a version", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Output, "o", "report.html", "the HTML file to write")
 		}},
-		"demo": {"demo [--dir DIR] [--recordings]", "write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
+		"demo": {"demo [--dir DIR] [--recordings=false]", "write an invented fleet's logs to a folder and run the pipeline on them", func(fs *flag.FlagSet, c *Command) {
 			fs.StringVar(&c.Dir, "dir", ".hindcast/demo", "folder for the demo fleet, work area and datasets")
-			fs.BoolVar(&c.Recordings, "recordings", false, "also write MCAP recordings of both embodiments and read them")
+			fs.BoolVar(&c.Recordings, "recordings", true, "also write MCAP recordings of both embodiments and read them (false: JSON Lines logs only)")
 			parallel(fs, c)
 		}},
 		"bench": {"bench [--frames N] [--runs K] [--peer BIN] [--s3-endpoint URL] [--recordings [--recording-mb M]]", "generate a fault-free fleet and time whole runs (optionally beside the peer job)", func(fs *flag.FlagSet, c *Command) {
