@@ -27,9 +27,11 @@ func TestHelpFlagsTwoDashes(t *testing.T) {
 		}
 		counts[name] = len(twoDash.FindAllString(out.String(), -1))
 	}
-	// Flag counts as declared in commands(): run has config, cpuprofile,
-	// parallel, version; report has only -o; version has none.
-	for name, want := range map[string]int{"run": 4, "report": 0, "version": 0, "plan": 2, "bench": 8} {
+	// Flag counts as declared in commands(): run has baseline, config,
+	// cpuprofile, parallel, version, waive; report has only -o; version has
+	// none; bench has dir, frames, runs, peer, zst, s3-endpoint, s3-bucket,
+	// recordings, recording-mb, parallel.
+	for name, want := range map[string]int{"run": 6, "report": 0, "version": 0, "plan": 2, "bench": 10} {
 		if counts[name] != want {
 			t.Errorf("%s --help lists %d --flags, want %d", name, counts[name], want)
 		}

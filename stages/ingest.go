@@ -48,9 +48,7 @@ func (Ingest) Reads(cfg *pipeline.Config) any {
 	for name, e := range cfg.Embodiments {
 		embs[name] = ingestEmbodiment{e.Obs, e.Act, e.ObsLow, e.ObsHigh, e.ActLow, e.ActHigh, e.Cameras, e.Frames}
 	}
-	return map[string]any{
-		"recordings":      cfg.Recordings,
-		"image_roots":     cfg.Source.ImageRoots,
+	reads := map[string]any{
 		"max_image_bytes": cfg.Source.MaxImageBytes,
 		"max_line_bytes":  cfg.Source.MaxLineBytes,
 		"embodiments":     embs,
@@ -58,6 +56,17 @@ func (Ingest) Reads(cfg *pipeline.Config) any {
 		"partitions":      cfg.Partitions,
 		"quarantine":      cfg.Quarantine,
 	}
+	// How recordings name their unit and embodiment and which time they use
+	// decide their ticks (SPEC §7.1), and image_roots which references are
+	// read; each is left out when unset, so a config without them reads
+	// what it read before.
+	if cfg.Recordings != nil {
+		reads["recordings"] = cfg.Recordings
+	}
+	if len(cfg.Source.ImageRoots) > 0 {
+		reads["image_roots"] = cfg.Source.ImageRoots
+	}
+	return reads
 }
 
 // Items implements pipeline.Stage: one item per selected object, keyed by the
