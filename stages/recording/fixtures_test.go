@@ -4,7 +4,9 @@ import (
 	"context"
 	"encoding/base64"
 	"encoding/json"
+	"io"
 	"os"
+	"path/filepath"
 	"reflect"
 	"testing"
 	"time"
@@ -141,7 +143,10 @@ func TestDecodeFixtures(t *testing.T) {
 // ticks over joints (CDR), commands (JSON, next) and the wrist camera (CDR).
 // Every tick falls on a joints message, so obs is that message's position as
 // npm @foxglove/rosmsg2-serialization read it back.
-func TestAssembleFixtureMessages(t *testing.T) {
+// armFixture feeds the messages of expected.json (as npm @mcap/core wrote
+// them) to the aligner in memory, under the frames config the fixture was
+// written for.
+func armFixture(t *testing.T) (*expectedFile, []*mcapread.Message, *pipeline.Embodiment, []Tick, Stats) {
 	e := loadExpected(t)
 	chans := map[string]*mcapread.Channel{}
 	var msgs []*mcapread.Message
@@ -189,6 +194,11 @@ func TestAssembleFixtureMessages(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	return e, msgs, emb, ticks, st
+}
+
+func TestAssembleFixtureMessages(t *testing.T) {
+	e, msgs, _, ticks, st := armFixture(t)
 	// Expected values, taken from expected.json at each tick's time.
 	at := func(topic string, tm int64) map[string]any {
 		for i, m := range e.Messages {
@@ -232,5 +242,75 @@ func TestAssembleFixtureMessages(t *testing.T) {
 	}
 	if st.Messages["/arm/joints"] != 31 || st.Messages["/wrist/image"] != 7 || len(st.Undecodable) != 0 {
 		t.Fatalf("stats %+v", st)
+	}
+}
+
+// fileSource is a local file as an mcapread.Source.
+type fileSource struct{ path string }
+
+func (f fileSource) Size() int64 {
+	st, err := os.Stat(f.path)
+	if err != nil {
+		return 0
+	}
+	return st.Size()
+}
+
+func (f fileSource) Open(_ context.Context, off int64) (io.ReadCloser, error) {
+	fh, err := os.Open(f.path)
+	if err != nil {
+		return nil, err
+	}
+	if _, err := fh.Seek(off, io.SeekStart); err != nil {
+		fh.Close()
+		return nil, err
+	}
+	return fh, nil
+}
+
+// The files written by npm @mcap/core — one chunked with its index and
+// summary, one without — read through the MCAP reader give exactly the
+// ticks of the same messages fed in memory (checked against the values
+// @foxglove/rosmsg2-serialization wrote in TestAssembleFixtureMessages), and
+// the recording's identity from its Metadata record.
+func TestAssembleFixtureFiles(t *testing.T) {
+	_, _, emb, want, wantSt := armFixture(t)
+	cfg := &pipeline.Config{
+		Embodiments: map[string]*pipeline.Embodiment{"picker6": emb},
+		Recordings: &pipeline.RecordingsConfig{
+			Unit:       pipeline.IdentityRule{Metadata: "robot", Key: "unit"},
+			Embodiment: pipeline.IdentityRule{Metadata: "robot", Key: "model"},
+			Time:       "log_time",
+		},
+	}
+	for _, name := range []string{"arm.mcap", "arm-unindexed.mcap"} {
+		t.Run(name, func(t *testing.T) {
+			src := fileSource{filepath.Join("..", "..", "testdata", "recordings", name)}
+			id, err := Identify(context.Background(), src, "fleet/"+name, cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if id.Unit != "arm-07" || id.Embodiment != "picker6" || id.Skip != "" {
+				t.Fatalf("identity %+v, want arm-07 / picker6 (the fixture's Metadata record)", id)
+			}
+			var got []Tick
+			st, err := Assemble(context.Background(), src, id, cfg, Options{ScratchDir: t.TempDir()}, func(k *Tick) error {
+				c := *k
+				c.Obs = append([]float64(nil), k.Obs...)
+				c.Act = append([]float64(nil), k.Act...)
+				c.Images = [][]byte{append([]byte(nil), k.Images[0]...)}
+				got = append(got, c)
+				return nil
+			})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if !reflect.DeepEqual(got, want) {
+				t.Errorf("%d ticks from the file differ from the %d ticks of the same messages in memory", len(got), len(want))
+			}
+			if st.Ticks != wantSt.Ticks || st.Incomplete || !reflect.DeepEqual(st.Messages, wantSt.Messages) {
+				t.Errorf("stats %+v, want %+v", st, wantSt)
+			}
+		})
 	}
 }
