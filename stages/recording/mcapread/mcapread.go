@@ -15,7 +15,6 @@ import (
 	"fmt"
 	"hash/crc32"
 	"io"
-	"sort"
 
 	"github.com/foxglove/mcap/go/mcap"
 	"github.com/klauspost/compress/zstd"
@@ -203,7 +202,9 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 	}
 	schemas := map[uint16]*Schema{}
 	chans := map[uint16]*Channel{}
-	var msgs []held
+	sorter := newSorter(opts)
+	defer sorter.close()
+	var sortErr error
 	var seq int64
 	// handle takes one whole record; it reports false for a record whose
 	// body does not parse.
@@ -243,7 +244,9 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 			if opts.UsePublishTime {
 				t = m.PublishTime
 			}
-			msgs = append(msgs, held{ch: ch, log: m.LogTime, pub: m.PublishTime, t: int64(t), seq: seq, data: append([]byte(nil), m.Data...)})
+			if err := sorter.add(held{ch: ch, log: m.LogTime, pub: m.PublishTime, t: int64(t), seq: seq, data: append([]byte(nil), m.Data...)}); err != nil && sortErr == nil {
+				sortErr = err
+			}
 			seq++
 		}
 		return true
@@ -255,6 +258,9 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 	for {
 		if err := ctx.Err(); err != nil {
 			return res, err
+		}
+		if sortErr != nil {
+			return res, sortErr
 		}
 		if _, err := io.ReadFull(br, hdr[:]); err != nil {
 			res.Incomplete = true
@@ -308,13 +314,11 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 			return res, fmt.Errorf("mcap read to end: %w", err)
 		}
 	}
-	sort.SliceStable(msgs, func(i, j int) bool { return msgs[i].t < msgs[j].t })
-	for i := range msgs {
-		h := &msgs[i]
-		if err := fn(&Message{Channel: h.ch, LogTime: h.log, PublishTime: h.pub, Time: h.t, Seq: h.seq, Data: h.data}); err != nil {
-			return res, err
-		}
-		res.Messages++
+	if sortErr != nil {
+		return res, sortErr
+	}
+	if err := sorter.emit(ctx, chans, fn, &res); err != nil {
+		return res, err
 	}
 	return res, nil
 }
