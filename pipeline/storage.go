@@ -540,3 +540,15 @@ func (u *localUpload) Abort() error {
 }
 
 func absPath(p string) (string, error) { return filepath.Abs(p) }
+
+// RedactURI returns uri with any password replaced by "xxxxx" (net/url
+// URL.Redacted), so that errors naming an endpoint never echo a secret.
+// A string that does not parse as a URL is replaced whole, since it may
+// still hold one.
+func RedactURI(uri string) string {
+	u, err := url.Parse(uri)
+	if err != nil {
+		return "(an unparsable URL)"
+	}
+	return u.Redacted()
+}
