@@ -453,8 +453,9 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
 		return err
 	}
-	tmp := dst + tempMarker + "link"
-	os.Remove(tmp)
+	// A name of its own per call: two runs publishing to one path must
+	// not share (and remove) each other's temporary link.
+	tmp := fmt.Sprintf("%s%slink%d-%d", dst, tempMarker, os.Getpid(), rand.Uint32())
 	if s.Durable {
 		// The work area writes without fsync; a published shard must be
 		// on disk before the manifest that names it.
