@@ -553,7 +553,7 @@ func (l *configLoader) storage(f cfgField, allowed []string, s *StorageConfig) {
 		if v, ok := l.str(g, want); ok {
 			u, err := url.Parse(v)
 			if err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "" || u.User != nil {
-				l.fail(g.key, g.line, "must be %s without credentials, got %s", want, describeNode(g.val))
+				l.fail(g.key, g.line, "must be %s without credentials, got %s", want, RedactURI(v))
 			} else {
 				s.Endpoint = v
 			}

@@ -453,8 +453,9 @@ func (s *LocalStore) Link(ctx context.Context, from Store, fromKey, key string) 
 	if err := os.MkdirAll(filepath.Dir(dst), 0o755); err != nil {
 		return err
 	}
-	tmp := dst + tempMarker + "link"
-	os.Remove(tmp)
+	// A name of its own per call: two runs publishing to one path must
+	// not share (and remove) each other's temporary link.
+	tmp := fmt.Sprintf("%s%slink%d-%d", dst, tempMarker, os.Getpid(), rand.Uint32())
 	if s.Durable {
 		// The work area writes without fsync; a published shard must be
 		// on disk before the manifest that names it.
@@ -540,3 +541,15 @@ func (u *localUpload) Abort() error {
 }
 
 func absPath(p string) (string, error) { return filepath.Abs(p) }
+
+// RedactURI returns uri with any password replaced by "xxxxx" (net/url
+// URL.Redacted), so that errors naming an endpoint never echo a secret.
+// A string that does not parse as a URL is replaced whole, since it may
+// still hold one.
+func RedactURI(uri string) string {
+	u, err := url.Parse(uri)
+	if err != nil {
+		return "(an unparsable URL)"
+	}
+	return u.Redacted()
+}
