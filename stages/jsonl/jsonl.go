@@ -353,6 +353,10 @@ func setString(dst *string, b []byte) {
 }
 
 // validUnit reports whether s matches ^[A-Za-z0-9._-]{1,64}$ (SPEC §1).
+// ValidUnit reports whether s matches SPEC §1's unit pattern; recordings
+// (SPEC §7.1) check their unit with it too, so both formats hold one rule.
+func ValidUnit(s string) bool { return validUnit([]byte(s)) }
+
 func validUnit(s []byte) bool {
 	if len(s) == 0 || len(s) > 64 {
 		return false

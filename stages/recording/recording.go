@@ -15,6 +15,7 @@ import (
 	"regexp"
 
 	"hindcast/pipeline"
+	"hindcast/stages/jsonl"
 	"hindcast/stages/recording/mcapread"
 )
 
@@ -83,7 +84,7 @@ func identify(key string, cfg *pipeline.Config, metadata func(name string) (map[
 	if err != nil {
 		return Identity{}, err
 	}
-	if !ok || !unitPattern.MatchString(unit) {
+	if !ok || !jsonl.ValidUnit(unit) {
 		return Identity{Skip: pipeline.SkipNoUnit}, nil
 	}
 	emb, ok, err := lookup(rules.Embodiment)
@@ -96,9 +97,6 @@ func identify(key string, cfg *pipeline.Config, metadata func(name string) (map[
 	return Identity{Unit: unit, Embodiment: emb}, nil
 }
 
-// unitPattern is SPEC §1's unit pattern (the JSON Lines reader checks the
-// same pattern byte by byte).
-var unitPattern = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
 
 // Tick is one tick of a recording, before the common checks.
 type Tick struct {
