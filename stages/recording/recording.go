@@ -97,7 +97,6 @@ func identify(key string, cfg *pipeline.Config, metadata func(name string) (map[
 	return Identity{Unit: unit, Embodiment: emb}, nil
 }
 
-
 // Tick is one tick of a recording, before the common checks.
 type Tick struct {
 	// Index is the tick's 1-based position among the recording's ticks
