@@ -13,11 +13,14 @@
 //     the ones it yields before the next change.
 // Output (committed, so the Go tests never need node), in ../recordings/damage/:
 //   damage-{zstd,lz4,none}.mcap  chunked (small chunks), indexed, summary;
+//   damage-zstd-nosummary.mcap   chunked, zstd, no summary (Channel records
+//                                only inside the chunks);
 //   damage-unchunked.mcap        the same messages, no chunks, no index;
 //   damage.json                  the messages in file order and, per file, every
 //                                top-level record: offset, end, opcode, the
-//                                messages it holds (indexes into messages) and,
-//                                for a chunk, where its compressed records lie.
+//                                messages it holds (indexes into messages), the
+//                                topics of the Channel records it holds and, for
+//                                a chunk, where its compressed records lie.
 // Run from testdata/node: `node damage-fixtures.mjs` (needs `lz4` on PATH).
 import { execFileSync } from "node:child_process";
 import { mkdirSync, writeFileSync } from "node:fs";
@@ -101,7 +104,7 @@ async function write(opts) {
 function records(file) {
   const r = new McapStreamReader({ includeChunks: true, decompressHandlers, validateCrcs: true });
   r.append(file);
-  const recs = [{ offset: 0, end: 8, op: "Magic", messages: [] }];
+  const recs = [{ offset: 0, end: 8, op: "Magic", messages: [], channels: [] }];
   let at = 8;
   let seen = 0;
   for (;;) {
@@ -114,7 +117,7 @@ function records(file) {
       if (Buffer.compare(file.subarray(end), file.subarray(0, 8)) !== 0) throw new Error("no closing magic");
     }
     if (end !== at) {
-      const top = { offset: at, end, op: rec.type, messages: [] };
+      const top = { offset: at, end, op: rec.type, messages: [], channels: [] };
       if (rec.type === "Chunk") {
         top.compression = rec.compression;
         top.records_offset = end - rec.records.byteLength;
@@ -124,6 +127,7 @@ function records(file) {
       at = end;
       if (rec.type === "Chunk") continue;
     }
+    if (rec.type === "Channel") recs[recs.length - 1].channels.push(rec.topic);
     if (rec.type === "Message") {
       const m = msgs[seen];
       if (rec.sequence !== m.index || rec.logTime !== m.t || Buffer.compare(Buffer.from(rec.data), Buffer.from(m.data)) !== 0) {
@@ -134,7 +138,7 @@ function records(file) {
   }
   if (!r.done() || seen !== msgs.length) throw new Error(`read back ${seen} of ${msgs.length} messages, done ${r.done()}`);
   if (file.length - at !== 8) throw new Error(`${file.length - at} bytes after the footer`);
-  recs.push({ offset: at, end: file.length, op: "Magic", messages: [] });
+  recs.push({ offset: at, end: file.length, op: "Magic", messages: [], channels: [] });
   return recs;
 }
 
@@ -143,6 +147,17 @@ const variants = {
   "damage-zstd.mcap": { compressChunk: compressors.zstd },
   "damage-lz4.mcap": { compressChunk: compressors.lz4 },
   "damage-none.mcap": {},
+  // Chunked without summary: the Channel records are only in the chunks.
+  "damage-zstd-nosummary.mcap": {
+    compressChunk: compressors.zstd,
+    useStatistics: false,
+    useSummaryOffsets: false,
+    useChunkIndex: false,
+    useMetadataIndex: false,
+    useAttachmentIndex: false,
+    repeatSchemas: false,
+    repeatChannels: false,
+  },
   "damage-unchunked.mcap": {
     useChunks: false,
     useStatistics: false,
