@@ -136,6 +136,11 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 	if err := j.checkVersion(ctx, version); err != nil {
 		return nil, err
 	}
+	release, err := LockWork(ctx, j.Env.Work, j.opt.Now)
+	if err != nil {
+		return nil, err
+	}
+	defer release()
 	res, err := RunStages(ctx, j.Env, stages)
 	if err != nil {
 		return nil, err

@@ -8,10 +8,12 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"io/fs"
 	"log/slog"
 	"os"
 	"runtime/debug"
 	"sort"
+	"strings"
 	"sync/atomic"
 	"time"
 
@@ -351,7 +353,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			began := time.Now()
 			out, err := safeDo(gctx, env, st, it)
 			if err != nil {
-				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, err)
+				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, vanishedWrite(env.Work, err))
 			}
 			raw, err := json.Marshal(out)
 			if err != nil {
@@ -418,6 +420,21 @@ func loadRecord(ctx context.Context, work Store, stage, key string) (doneRecord,
 		return doneRecord{}, false, nil
 	}
 	return rec, true, nil
+}
+
+// ErrWorkShared is wrapped around the failure of an item whose own
+// unfinished write vanished while it ran: only the clearing of the same item
+// by another run using the work area at once removes it.
+var ErrWorkShared = errors.New("another run is using this work area at the same time")
+
+// vanishedWrite explains err when it is an unfinished write of the item
+// (a temporary file, which nothing but a clearing of the item removes)
+// that is no longer there.
+func vanishedWrite(work Store, err error) error {
+	if !errors.Is(err, fs.ErrNotExist) || !strings.Contains(err.Error(), tempMarker) {
+		return err
+	}
+	return fmt.Errorf("%w (%s): it cleared this item while this run wrote it; let one run finish before another starts on the same work area: %w", ErrWorkShared, work.URI(), err)
 }
 
 // ErrInternal marks a failure that is a bug in hindcast (a panic), not in
