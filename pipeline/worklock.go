@@ -1,6 +1,7 @@
 package pipeline
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
 	"errors"
@@ -70,7 +71,11 @@ func lockWork(ctx context.Context, work Store, now func() time.Time, renew time.
 		var held workLock
 		_ = json.Unmarshal(raw, &held)
 		if stale, why := lockStale(held, host, now()); stale && try < 2 {
-			// Left by a killed run: take it over.
+			// Left by a killed run: take it over, unless another run
+			// took it over first (the lock is no longer what was read).
+			if again, err := ReadAll(ctx, work, WorkLockKey); err == nil && !bytes.Equal(again, raw) {
+				continue
+			}
 			if err := work.Delete(ctx, WorkLockKey); err != nil {
 				return nil, fmt.Errorf("lock the work area: remove the lock of a run that %s: %w", why, err)
 			}
