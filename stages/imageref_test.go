@@ -625,3 +625,22 @@ func TestImageRefResolve(t *testing.T) {
 		}
 	}
 }
+
+// TestImageRefCountsBytes: an image read from a local folder, which no
+// metered store passes, still counts in the run's bytes read and in the
+// progress display's image bytes.
+func TestImageRefCountsBytes(t *testing.T) {
+	d := newRefDirs(t)
+	env, m, p := fetcherEnv(d.src, 16<<20, nil, fileURI(d.outside)+"/")
+	fe := newImageFetcher(env)
+	defer fe.close()
+	for _, ref := range []string{"frames/ok.png", fileURI(d.outside) + "/secret.jpg"} {
+		if _, err := fe.fetch(context.Background(), ref); err != nil {
+			t.Fatalf("fetch %s: %v", ref, err)
+		}
+	}
+	want := int64(len(d.ok) + len(d.secret))
+	if n, k := m.BytesRead.Load(), p.image.Load(); n != want || k != want {
+		t.Errorf("bytes read %d, progress %d; want %d for both", n, k, want)
+	}
+}
