@@ -593,7 +593,8 @@ func TestImageRefResolve(t *testing.T) {
 	defer fe.close()
 	for _, c := range []struct{ ref, root, key string }{
 		{"a/b.png", "file:///data/fleet/", "a/b.png"},
-		{"a%20b.png", "file:///data/fleet/", "a%20b.png"}, // keys are taken as written
+		{"a%20b.png", "file:///data/fleet/", "a%20b.png"},     // keys are taken as written
+		{"./a/./b.png", "file:///data/fleet/", "./a/./b.png"}, // "." stays where it is
 		{"file:///data/fleet/a/b.png", "file:///data/fleet/", "a/b.png"},
 		{"FILE://LocalHost/data/fleet/a%20b.png", "file:///data/fleet/", "a b.png"},
 		{"file:///data/fleet/x/../a.png", "file:///data/fleet/", "a.png"},
@@ -612,7 +613,7 @@ func TestImageRefResolve(t *testing.T) {
 		}
 	}
 	for _, ref := range []string{
-		"", "/etc/passwd", "../x", "a/../../x", "./a", "a/./b", "%2e%2e/x", "a/%2E%2E/x", "%2Fetc/passwd",
+		"", "/etc/passwd", "../x", "a/../../x", "a/../b", "%2e%2e/x", "a/%2E%2E/x", "%2Fetc/passwd",
 		"file:///etc/passwd", "file:///data/fleet", "file:///data/fleet/", "file:///data/fleetX/a.png",
 		"file:///data/fleet/../x.png", "file:///data/fleet/%2e%2e/x.png", "file:///data%2Ffleet%2F..%2Fx.png",
 		"file://host/data/fleet/a.png", "file:///data/fleet/a%00.png", "file:///data/fleet/a.png?x", "file:///data/fleet/a.png#x",
