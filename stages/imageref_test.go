@@ -294,9 +294,10 @@ func TestImageRefFileURISpellings(t *testing.T) {
 		"file://"+src+"/frames/%6Fk.png",         // 20 kept: %6F is "o"
 		"file://"+src+"/frames/../frames/ok.png", // 21 kept: stays inside
 		"frames/ok.png",                          // 22 kept
+		"./frames/ok.png",                        // 23 kept
 	)
-	wantRefCounts(t, r, 22, 6)
-	wantOnlyImages(t, r, d.ok, 6, d.secret)
+	wantRefCounts(t, r, 23, 7)
+	wantOnlyImages(t, r, d.ok, 7, d.secret)
 }
 
 // TestImageRefImageRoots: a folder named in source.image_roots is read,
