@@ -107,7 +107,7 @@ func newImageFetcher(env *pipeline.Env) *imageFetcher {
 	return fe
 }
 
-// close releases the folders and stores the fetcher opened.
+// close releases the folders the fetcher opened (stores hold no files).
 func (fe *imageFetcher) close() error {
 	var errs []error
 	for _, r := range fe.local {
