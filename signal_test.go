@@ -8,6 +8,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"os"
@@ -96,13 +97,14 @@ func TestSignalEndsRunWithinSeconds(t *testing.T) {
 		delay := time.Duration(c.at * float64(length))
 		code, after, sent, stderr := signalRun(t, bin, c.sig, delay, "run", "--config", cfg, "--version", version, "--parallel", "2")
 		if !sent {
+			t.Logf("%v at %.2fs: the run had ended, exit %d", c.sig, delay.Seconds(), code)
 			// Only the last moment may come after a faster run's end.
 			if code != 0 || c.at < 0.8 {
 				t.Errorf("%v at %.2fs: the run ended before it, exit %d", c.sig, delay.Seconds(), code)
 			}
 			continue
 		}
-		t.Logf("%v at %.2fs: exit %d %.2fs later", c.sig, delay.Seconds(), code, after.Seconds())
+		t.Logf("%v at %.2fs, in stage %s: exit %d %.2fs later", c.sig, delay.Seconds(), lastStage(stderr), code, after.Seconds())
 		if code == 0 && c.at > 0.8 {
 			continue // it was committing, and finished
 		}
@@ -167,4 +169,20 @@ func TestNonRegularSourceFailsItsItem(t *testing.T) {
 		clWrite(t, cfg, []byte(strings.Replace(string(text), "\nwork: work\n", "\n  exclude: ['"+c.key+"']\nwork: work\n", 1)))
 		clMustRun(t, bin, nil, "run", "--config", cfg, "--version", "v1")
 	}
+}
+
+// lastStage names the stage whose "stage start" record came last in a
+// run's log ("" when none did).
+func lastStage(log string) string {
+	stage := ""
+	for _, line := range strings.Split(log, "\n") {
+		var rec struct {
+			Msg   string `json:"msg"`
+			Stage string `json:"stage"`
+		}
+		if json.Unmarshal([]byte(line), &rec) == nil && rec.Msg == "stage start" {
+			stage = rec.Stage
+		}
+	}
+	return stage
 }
