@@ -353,8 +353,8 @@ func TestIngestReasonFixtures(t *testing.T) {
 
 // TestIngestImageURIs covers the reference forms of SPEC §1 `img` not in
 // the fixtures: absolute file:// URIs (here to a folder outside the source
-// root), a JPEG data: URI, a relative key mixed with an absolute URI, and a
-// data: URI whose payload is not base64.
+// root, named in source.image_roots), a JPEG data: URI, a relative key
+// mixed with an absolute URI, and a data: URI whose payload is not base64.
 func TestIngestImageURIs(t *testing.T) {
 	imgs := fixtureImages(t)
 	outside := t.TempDir()
@@ -388,7 +388,7 @@ func TestIngestImageURIs(t *testing.T) {
 			line(12000, "s3://ab/ok.png", abs("ok.jpg")),
 		),
 	}
-	m := runPipeline(t, fixtureConfig(100000), files)
+	m := runPipeline(t, withImageRoots(t, fixtureConfig(100000), "file://"+filepath.ToSlash(outside)), files)
 	srcs := []srcWant{{"abs.jsonl", 12, 4, map[string]int64{pipeline.ImageMissing: 6, pipeline.ImageCorrupt: 2}}}
 	wantSource(t, m, "abs.jsonl", 12, 4, srcs[0].dropped)
 	wantFunnel(t, m, funnelOf(1, 0, srcs, 4, 1, 3))
@@ -912,7 +912,7 @@ func TestIngestFileURIPercentEncoded(t *testing.T) {
 	line := func(ts int64, front, wrist string) string {
 		return fmt.Sprintf(`{"unit":"p1","embodiment":"cam","t":%d,"obs":[1,2,3],"img":{"front":%q,"wrist":%q}}`, ts, front, wrist)
 	}
-	m := runPipeline(t, fixtureConfig(100000), map[string][]byte{"pct.jsonl": jsonLines(
+	m := runPipeline(t, withImageRoots(t, fixtureConfig(100000), root), map[string][]byte{"pct.jsonl": jsonLines(
 		line(1000, "frames/ok.png", root+"/c%20d/ok.jpg"),   // folder name encoded
 		line(2000, root+"/a%20b.png", root+"/c%20d/ok.jpg"), // file name encoded
 	), "frames/ok.png": imgs["frames/ok.png"]})
