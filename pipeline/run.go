@@ -10,6 +10,7 @@ import (
 	"io"
 	"io/fs"
 	"log/slog"
+	"math/rand/v2"
 	"os"
 	"runtime/debug"
 	"sort"
@@ -435,6 +436,28 @@ func vanishedWrite(work Store, err error) error {
 		return err
 	}
 	return fmt.Errorf("%w (%s): it cleared this item while this run wrote it; let one run finish before another starts on the same work area: %w", ErrWorkShared, work.URI(), err)
+}
+
+// probePrefix starts the name of the small object a run writes and deletes
+// at the root of its work area and output before the first stage.
+const probePrefix = ".hindcast-write-probe-"
+
+// ProbeWritable writes a small object at the root of s and deletes it, so
+// that a location the run cannot write (a read-only folder, a bucket the
+// credentials may only read) fails the run before any stage, naming the
+// location, instead of after all four. role names the location's part in
+// the run ("work", "output"). The probe is written exclusively, so it never
+// replaces anything; a process killed between the write and the delete
+// leaves it behind, with its name saying what it is.
+func ProbeWritable(ctx context.Context, role string, s Store) error {
+	key := fmt.Sprintf("%s%d-%08x", probePrefix, os.Getpid(), rand.Uint32())
+	if err := Put(ctx, s, key, []byte("hindcast checks that it can write here; safe to delete\n"), true); err != nil {
+		return fmt.Errorf("%s %s cannot be written: %w", role, s.URI(), err)
+	}
+	if err := s.Delete(ctx, key); err != nil {
+		return fmt.Errorf("%s %s: delete the write probe: %w", role, s.URI(), err)
+	}
+	return nil
 }
 
 // ErrInternal marks a failure that is a bug in hindcast (a panic), not in
