@@ -403,7 +403,17 @@ func (w *ImageWriter) Put(f *schemas.Frame) error {
 		w.up, w.bw = up, bufio.NewWriterSize(up, 1<<20)
 	}
 	for _, b := range f.Img {
-		if _, err := w.bw.Write(b); err != nil {
+		var err error
+		if len(b) >= imageDirect {
+			// A camera frame goes to the object as it is, without a
+			// copy through the buffer.
+			if err = w.bw.Flush(); err == nil {
+				_, err = w.up.Write(b)
+			}
+		} else {
+			_, err = w.bw.Write(b)
+		}
+		if err != nil {
 			return fmt.Errorf("write %s: %w", w.key, err)
 		}
 		f.ImgAt = append(f.ImgAt, schemas.ImageAt{Off: w.n, Len: int64(len(b))})
@@ -441,6 +451,9 @@ const (
 	maxOpenImages = 4
 	imageSkip     = 1 << 20
 	imageBuffer   = 256 << 10
+	// imageDirect is the image size from which an image is written and
+	// read without a copy through a buffer (one system call each).
+	imageDirect = 16 << 10
 )
 
 // ImageReader reads frames' camera bytes back from the objects an
@@ -533,7 +546,11 @@ func (r *ImageReader) read(key string, off int64, dst []byte) error {
 		return fmt.Errorf("read images %s at %d: %w", key, off, err)
 	}
 	o.pos = off
-	n, err := io.ReadFull(o.br, dst)
+	var src io.Reader = o.br
+	if len(dst) >= imageDirect && o.br.Buffered() == 0 {
+		src = o.rc
+	}
+	n, err := io.ReadFull(src, dst)
 	o.pos += int64(n)
 	if err != nil {
 		return fmt.Errorf("read images %s at %d (%d bytes): %w", key, off, len(dst), err)
