@@ -1,0 +1,222 @@
+package main
+
+// Bounded memory on recordings (SPEC §7, issue: "a recording of several GB
+// must go through with memory bounded by configuration, not by its size"):
+// one recording several times larger than the reader's sort buffer is run
+// through the whole pipeline in a child process, whose peak resident set
+// (getrusage's ru_maxrss) must stay far below the recording's size.
+
+import (
+	"bufio"
+	"bytes"
+	"encoding/json"
+	"fmt"
+	"image"
+	"image/jpeg"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"syscall"
+	"testing"
+
+	"github.com/foxglove/mcap/go/mcap"
+
+	"hindcast/stages/recording/ros2msg"
+)
+
+// recSortBuffer is the message bytes one recording's reader holds before it
+// spills sorted runs to scratch files (recordingSortBuffer in
+// stages/ingest_recording.go, passed to mcapread.Options.SortBufferBytes).
+const recSortBuffer = 64 << 20
+
+// recBigConfig reads one observation-only arm with a wrist camera on the
+// camera's clock (SPEC §7.3): every camera message is a tick.
+const recBigConfig = `dataset: rec-big
+source:
+  uri: src
+work: work
+output: out
+partitions: 2
+seed: 7
+recordings:
+  unit: {metadata: robot, key: unit}
+  embodiment: {metadata: robot, key: model}
+embodiments:
+  cam:
+    obs: 3
+    obs_low: -10
+    obs_high: 10
+    cameras: [wrist]
+    goal_tolerance: 0.1
+    frames:
+      clock: /wrist/image
+      max_age: 150ms
+      obs:
+        - {topic: /arm/joints, field: position}
+      cameras:
+        wrist: {topic: /wrist/image, field: data}
+episodes: {max_gap: 500ms, min_steps: 2, max_steps: 300}
+goals: {future: 1, geometric: 0, final: 0, negative: 0}
+`
+
+// recJPEGs encodes n noisy 320×240 frames with image/jpeg (30–60 KB each at
+// quality 85, like a wrist camera's).
+func recJPEGs(t *testing.T, n int) [][]byte {
+	t.Helper()
+	rng := rand.New(rand.NewPCG(11, 12))
+	var out [][]byte
+	im := image.NewGray(image.Rect(0, 0, 320, 240))
+	for range n {
+		for i := range im.Pix {
+			im.Pix[i] = uint8(100 + rng.IntN(40))
+		}
+		var b bytes.Buffer
+		if err := jpeg.Encode(&b, im, &jpeg.Options{Quality: 85}); err != nil {
+			t.Fatal(err)
+		}
+		out = append(out, b.Bytes())
+	}
+	return out
+}
+
+// writeBigRecording streams a recording of at least size bytes to path
+// (uncompressed 4 MiB chunks, index and summary written by the MCAP
+// project's Go writer): joints (CDR float64[3]) at 100 Hz and a wrist
+// camera (CDR uint8[], JPEG) at 15 Hz, from recT0. It returns the camera
+// messages written (the ticks) and the file's size.
+func writeBigRecording(t *testing.T, path string, size int64) (frames int64, written int64) {
+	t.Helper()
+	f, err := os.Create(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	cw := &recCounter{w: bufio.NewWriterSize(f, 1<<20)}
+	w, err := mcap.NewWriter(cw, &mcap.WriterOptions{Chunked: true, ChunkSize: 4 << 20, Compression: mcap.CompressionNone, IncludeCRC: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	must := func(err error) {
+		t.Helper()
+		if err != nil {
+			t.Fatalf("write %s: %v", path, err)
+		}
+	}
+	joints, err := ros2msg.Parse("hc_msgs/Joints", []byte("float64[] position\n"))
+	must(err)
+	img, err := ros2msg.Parse("hc_msgs/Image", []byte("uint8[] data\n"))
+	must(err)
+	must(w.WriteHeader(&mcap.Header{Profile: "ros2", Library: "hindcast test"}))
+	must(w.WriteSchema(&mcap.Schema{ID: 1, Name: "hc_msgs/Joints", Encoding: "ros2msg", Data: []byte("float64[] position\n")}))
+	must(w.WriteSchema(&mcap.Schema{ID: 2, Name: "hc_msgs/Image", Encoding: "ros2msg", Data: []byte("uint8[] data\n")}))
+	must(w.WriteChannel(&mcap.Channel{ID: 1, SchemaID: 1, Topic: "/arm/joints", MessageEncoding: "cdr"}))
+	must(w.WriteChannel(&mcap.Channel{ID: 2, SchemaID: 2, Topic: "/wrist/image", MessageEncoding: "cdr"}))
+	must(w.WriteMetadata(&mcap.Metadata{Name: "robot", Metadata: map[string]string{"unit": "big-01", "model": "cam"}}))
+	pool := recJPEGs(t, 8)
+	var encoded [][]byte
+	for _, p := range pool {
+		d, err := img.Encode(map[string]any{"data": p}, false)
+		must(err)
+		encoded = append(encoded, d)
+	}
+	const jointsNs, cameraNs = int64(10_000_000), int64(66_666_667) // 100 Hz, 15 Hz
+	var seq uint32
+	nextCam := recT0
+	for tm := recT0; cw.n < size; tm += jointsNs {
+		// The camera frames due before the next joints message, then it.
+		for nextCam <= tm {
+			must(w.WriteMessage(&mcap.Message{ChannelID: 2, Sequence: seq, LogTime: uint64(nextCam), PublishTime: uint64(nextCam), Data: encoded[frames%int64(len(encoded))]}))
+			seq++
+			frames++
+			nextCam += cameraNs
+		}
+		d, err := joints.Encode(map[string]any{"position": []float64{0.1, 0.2, float64(seq%100) / 100}}, false)
+		must(err)
+		must(w.WriteMessage(&mcap.Message{ChannelID: 1, Sequence: seq, LogTime: uint64(tm), PublishTime: uint64(tm), Data: d}))
+		seq++
+	}
+	must(w.Close())
+	must(cw.w.Flush())
+	return frames, cw.n
+}
+
+type recCounter struct {
+	w *bufio.Writer
+	n int64
+}
+
+func (c *recCounter) Write(p []byte) (int, error) {
+	n, err := c.w.Write(p)
+	c.n += int64(n)
+	return n, err
+}
+
+// recMemLimit is the soft memory limit the child runs under: the Go
+// runtime's GOMEMLIMIT, which hindcast leaves to the environment when set
+// (tuneGC in main.go) — memory bounded by configuration.
+const recMemLimit = 160 << 20
+
+// TestRecordingsMemoryBounded runs one recording of 4 sort buffers (256
+// MiB) through the pipeline in a child process under a 160 MiB soft memory
+// limit and checks its peak RSS (getrusage ru_maxrss): within the limit and
+// 64 MiB of slack (runtime and non-heap memory), so below the recording's
+// size — a run that held the recording whole would be above it — and below
+// the issue's 1 GiB. Every tick comes through as a frame, so the bound is
+// not that of a run that gave up, and no scratch run of the reader's sort
+// is left behind.
+func TestRecordingsMemoryBounded(t *testing.T) {
+	bin := buildHindcast(t)
+	dir := t.TempDir()
+	clWrite(t, filepath.Join(dir, "c.yaml"), []byte(recBigConfig))
+	scratch := filepath.Join(dir, "tmp")
+	for _, d := range []string{"src", "tmp"} {
+		if err := os.MkdirAll(filepath.Join(dir, d), 0o755); err != nil {
+			t.Fatal(err)
+		}
+	}
+	const size = 4 * recSortBuffer
+	frames, written := writeBigRecording(t, filepath.Join(dir, "src", "big.mcap"), size)
+	t.Logf("recording: %.1f MiB, %d camera frames", float64(written)/(1<<20), frames)
+
+	env := []string{"TMPDIR=" + scratch, fmt.Sprintf("GOMEMLIMIT=%d", recMemLimit)}
+	cmd, stdout, stderr := clCommand(t.Context(), bin, env, "run", "--config", filepath.Join(dir, "c.yaml"), "--version", "v1", "--parallel", "2")
+	if err := cmd.Run(); err != nil {
+		t.Fatalf("run: %v\nstdout:\n%s\nstderr:\n%s", err, clTail(stdout.String(), 3000), clTail(stderr.String(), 3000))
+	}
+	ru, ok := cmd.ProcessState.SysUsage().(*syscall.Rusage)
+	if !ok {
+		t.Fatal("no rusage for the child")
+	}
+	peak := ru.Maxrss * 1024 // Linux: kilobytes (getrusage(2))
+	t.Logf("peak RSS %.0f MiB for a %.0f MiB recording (sort buffer %d MiB, GOMEMLIMIT %d MiB)",
+		float64(peak)/(1<<20), float64(written)/(1<<20), recSortBuffer>>20, recMemLimit>>20)
+
+	var m struct {
+		Funnel struct {
+			Lines  int64 `json:"lines"`
+			Frames int64 `json:"frames"`
+		} `json:"funnel"`
+		Sources []struct {
+			Incomplete bool `json:"incomplete"`
+		} `json:"sources"`
+	}
+	b, err := os.ReadFile(filepath.Join(dir, "out", "rec-big", "v1", "manifest.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := json.Unmarshal(b, &m); err != nil {
+		t.Fatal(err)
+	}
+	if m.Funnel.Lines != frames || m.Funnel.Frames != frames || len(m.Sources) != 1 || m.Sources[0].Incomplete {
+		t.Errorf("funnel %+v, sources %+v: want %d ticks, all kept, one complete source", m.Funnel, m.Sources, frames)
+	}
+	const slack = 64 << 20
+	if peak >= recMemLimit+slack || peak >= written || peak >= 1<<30 {
+		t.Errorf("peak RSS %.0f MiB, want below %d MiB (limit and slack), the recording's %.0f MiB and 1 GiB",
+			float64(peak)/(1<<20), (recMemLimit+slack)>>20, float64(written)/(1<<20))
+	}
+	left, err := filepath.Glob(filepath.Join(scratch, "mcap-run-*"))
+	if err != nil || len(left) != 0 {
+		t.Errorf("scratch runs left in TMPDIR: %v (%v)", left, err)
+	}
+}
