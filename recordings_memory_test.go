@@ -1,3 +1,5 @@
+//go:build linux
+
 package main
 
 // Bounded memory on recordings (SPEC §7, issue: "a recording of several GB
@@ -16,8 +18,10 @@ import (
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"strings"
 	"syscall"
 	"testing"
+	"time"
 
 	"github.com/foxglove/mcap/go/mcap"
 
@@ -219,4 +223,82 @@ func TestRecordingsMemoryBounded(t *testing.T) {
 	if err != nil || len(left) != 0 {
 		t.Errorf("scratch runs left in TMPDIR: %v (%v)", left, err)
 	}
+}
+
+// recSpilling reports whether process pid holds a spilled sort run open:
+// a file descriptor whose target names an "mcap-run-" scratch file
+// (/proc/PID/fd, proc(5); an unlinked one reads "… (deleted)").
+func recSpilling(pid int) bool {
+	fds, err := os.ReadDir(fmt.Sprintf("/proc/%d/fd", pid))
+	if err != nil {
+		return false
+	}
+	for _, fd := range fds {
+		target, err := os.Readlink(fmt.Sprintf("/proc/%d/fd/%s", pid, fd.Name()))
+		if err == nil && strings.Contains(filepath.Base(target), "mcap-run-") {
+			return true
+		}
+	}
+	return false
+}
+
+// TestRecordingsKillWhileSpilling kills a run with SIGKILL at the moment
+// it holds a spilled sort run of a recording of 2 sort buffers open, then
+// checks that the scratch folder holds nothing (the runs have no name), and
+// that the rerun on the same work area gives the clean run's version.
+func TestRecordingsKillWhileSpilling(t *testing.T) {
+	bin := buildHindcast(t)
+	dir := t.TempDir()
+	scratch := filepath.Join(dir, "tmp")
+	for _, d := range []string{"src", "tmp"} {
+		if err := os.MkdirAll(filepath.Join(dir, d), 0o755); err != nil {
+			t.Fatal(err)
+		}
+	}
+	frames, written := writeBigRecording(t, filepath.Join(dir, "src", "big.mcap"), 2*recSortBuffer)
+	t.Logf("recording: %.1f MiB, %d camera frames", float64(written)/(1<<20), frames)
+	env := []string{"TMPDIR=" + scratch}
+	config := func(name string) string {
+		text := clReplace(t, recBigConfig, "\nwork: work\n", "\nwork: "+name+"-work\n")
+		text = clReplace(t, text, "\noutput: out\n", "\noutput: "+name+"-out\n")
+		p := filepath.Join(dir, name+".yaml")
+		clWrite(t, p, []byte(text))
+		return p
+	}
+	clMustRun(t, bin, env, "run", "--config", config("clean"), "--version", "v1", "--parallel", "2")
+	want := clLocalVersion(t, filepath.Join(dir, "clean-out"), "rec-big", "v1")
+
+	cfg := config("killed")
+	cmd, _, stderr := clCommand(t.Context(), bin, env, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	done := make(chan error, 1)
+	go func() { done <- cmd.Wait() }()
+	tick := time.NewTicker(10 * time.Millisecond)
+	defer tick.Stop()
+	killed := false
+	for !killed {
+		select {
+		case err := <-done:
+			t.Fatalf("the run ended (%v) before it was seen holding a spilled run:\n%s", err, clTail(stderr.String(), 3000))
+		case <-tick.C:
+			if recSpilling(cmd.Process.Pid) {
+				if err := cmd.Process.Signal(syscall.SIGKILL); err != nil {
+					t.Fatalf("kill: %v", err)
+				}
+				killed = true
+			}
+		}
+	}
+	<-done
+	if ws, ok := cmd.ProcessState.Sys().(syscall.WaitStatus); !ok || !ws.Signaled() {
+		t.Fatalf("the run was not ended by the kill: %v", cmd.ProcessState)
+	}
+	if left, err := filepath.Glob(filepath.Join(scratch, "*")); err != nil || len(left) != 0 {
+		t.Errorf("the killed run left %d files in its scratch folder: %v (%v)", len(left), left, err)
+	}
+	clMustRun(t, bin, env, "run", "--config", cfg, "--version", "v1", "--parallel", "2")
+	got := clLocalVersion(t, filepath.Join(dir, "killed-out"), "rec-big", "v1")
+	clSameContent(t, want, got)
 }
