@@ -243,7 +243,8 @@ func recSpilling(pid int) bool {
 }
 
 // TestRecordingsKillWhileSpilling kills a run with SIGKILL at the moment
-// it holds a spilled sort run of a recording of 2 sort buffers open, then
+// it holds a spilled sort run of a recording of 1.25 sort buffers open (its
+// messages do not fit the buffer, so the reader spills), then
 // checks that the scratch folder holds nothing (the runs have no name), and
 // that the rerun on the same work area gives the clean run's version.
 func TestRecordingsKillWhileSpilling(t *testing.T) {
@@ -255,7 +256,7 @@ func TestRecordingsKillWhileSpilling(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
-	frames, written := writeBigRecording(t, filepath.Join(dir, "src", "big.mcap"), 2*recSortBuffer)
+	frames, written := writeBigRecording(t, filepath.Join(dir, "src", "big.mcap"), recSortBuffer+recSortBuffer/4)
 	t.Logf("recording: %.1f MiB, %d camera frames", float64(written)/(1<<20), frames)
 	env := []string{"TMPDIR=" + scratch}
 	config := func(name string) string {
