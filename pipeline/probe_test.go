@@ -3,8 +3,10 @@ package pipeline_test
 import (
 	"context"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"testing"
 
 	"hindcast/pipeline"
@@ -69,12 +71,14 @@ func TestProbeOutputUnderAFile(t *testing.T) {
 }
 
 // TestProbeReadOnlyFolder: a read-only (0555) output or work folder fails
-// the run before its first stage naming it. Root writes through modes, so
-// the test needs an ordinary user (CI runs as one); as root it is skipped
-// and TestProbeOutputUnderAFile stands in.
+// the run before its first stage naming it. Root writes through modes
+// (POSIX permission checks do not apply to it), so as root the test runs
+// itself again as the unprivileged uid 65534 (the conventional "nobody",
+// common practice), from a copy of the test binary that user can run.
 func TestProbeReadOnlyFolder(t *testing.T) {
 	if os.Geteuid() == 0 {
-		t.Skip("root writes into 0555 folders; see TestProbeOutputUnderAFile")
+		probeAsNobody(t, "TestProbeReadOnlyFolder")
+		return
 	}
 	for _, role := range []string{"work", "output"} {
 		dir := t.TempDir()
@@ -88,6 +92,50 @@ func TestProbeReadOnlyFolder(t *testing.T) {
 		}
 		t.Cleanup(func() { os.Chmod(bad, 0o755) })
 		probeFails(t, probeConfig(t, dir, work, out), role, bad)
+	}
+}
+
+// probeAsNobody runs the test name of this test binary as uid/gid 65534
+// and fails unless it passed (not skipped).
+func probeAsNobody(t *testing.T, name string) {
+	t.Helper()
+	self, err := os.Executable()
+	if err != nil {
+		t.Fatal(err)
+	}
+	dir, err := os.MkdirTemp("", "hindcast-nobody-")
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { os.RemoveAll(dir) })
+	if err := os.Chmod(dir, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	bin := filepath.Join(dir, "pipeline.test")
+	b, err := os.ReadFile(self)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(bin, b, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	tmp := filepath.Join(dir, "tmp")
+	if err := os.Mkdir(tmp, 0o777); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Chmod(tmp, 0o1777); err != nil {
+		t.Fatal(err)
+	}
+	cmd := exec.Command(bin, "-test.run=^"+name+"$", "-test.v", "-test.count=1")
+	cmd.Dir = dir
+	cmd.Env = []string{"TMPDIR=" + tmp, "PATH=" + os.Getenv("PATH")}
+	cmd.SysProcAttr = &syscall.SysProcAttr{Credential: &syscall.Credential{Uid: 65534, Gid: 65534}}
+	outb, err := cmd.CombinedOutput()
+	if err != nil {
+		t.Fatalf("%s as uid 65534: %v\n%s", name, err, outb)
+	}
+	if !strings.Contains(string(outb), "--- PASS: "+name) {
+		t.Fatalf("%s as uid 65534 did not pass:\n%s", name, outb)
 	}
 }
 
