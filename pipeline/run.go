@@ -446,12 +446,16 @@ const probePrefix = ".hindcast-write-probe-"
 // that a location the run cannot write (a read-only folder, a bucket the
 // credentials may only read) fails the run before any stage, naming the
 // location, instead of after all four. role names the location's part in
-// the run ("work", "output"). The probe is written exclusively, so it never
-// replaces anything; a process killed between the write and the delete
-// leaves it behind, with its name saying what it is.
+// the run ("work", "output"). The probe's name holds the process id and 64
+// random bits, so it replaces nothing; it is a plain write, not an
+// exclusive one, because an S3 server may answer concurrent conditional
+// writes with 409 Conflict (versitygw did, to workers of one cluster stage
+// probing at once), which says nothing about whether the place is
+// writable. A process killed between the write and the delete leaves it
+// behind, with its name saying what it is.
 func ProbeWritable(ctx context.Context, role string, s Store) error {
-	key := fmt.Sprintf("%s%d-%08x", probePrefix, os.Getpid(), rand.Uint32())
-	if err := Put(ctx, s, key, []byte("hindcast checks that it can write here; safe to delete\n"), true); err != nil {
+	key := fmt.Sprintf("%s%d-%016x", probePrefix, os.Getpid(), rand.Uint64())
+	if err := Put(ctx, s, key, []byte("hindcast checks that it can write here; safe to delete\n"), false); err != nil {
 		return fmt.Errorf("%s %s cannot be written: %w", role, s.URI(), err)
 	}
 	if err := s.Delete(ctx, key); err != nil {
