@@ -304,6 +304,28 @@ func BenchmarkBombRSS(b *testing.B) {
 			wantFunnelCounts(b, man, 5, 3, 1, 8, map[string]int64{pipeline.Malformed: 1, pipeline.DimMismatch: 1})
 		},
 	}, {
+		// 10⁵ tiny objects of one line: 100 units of 1,000 lines, each
+		// unit one episode.
+		name: "objects-100k",
+		setup: func(b *testing.B, dir string) bombRun {
+			for u := range 100 {
+				unit := fmt.Sprintf("u%03d", u)
+				if err := os.MkdirAll(filepath.Join(dir, "src", unit), 0o755); err != nil {
+					b.Fatal(err)
+				}
+				for i := range 1000 {
+					line := botLine(unit, int64(1000*(i+1)), i) + "\n"
+					if err := os.WriteFile(filepath.Join(dir, "src", unit, fmt.Sprintf("%04d.jsonl", i)), []byte(line), 0o644); err != nil {
+						b.Fatal(err)
+					}
+				}
+			}
+			return writeBombConfig(b, dir, "", "episodes: {max_gap: 1h, min_steps: 2, max_steps: 1000}\n")
+		},
+		check: func(b *testing.B, man *pipeline.Manifest) {
+			wantFunnelCounts(b, man, 100_000, 100_000, 100, 100*4*999, map[string]int64{})
+		},
+	}, {
 		// 10 GiB each of NULs (one oversize line), spaces (one blank line)
 		// and newlines (10 GiB of blank lines), each then 2 valid lines.
 		name: "gzip-10GiB",
