@@ -49,6 +49,10 @@ func TestMistypedFlagSaidOnceWithTheCommandsUsage(t *testing.T) {
 	for _, c := range cases {
 		t.Run(strings.Join(c.args, " "), func(t *testing.T) {
 			code, out, errOut := runMain(t, c.args...)
+			errOut, rec := splitExitRecord(t, errOut)
+			if rec.Kind != kindUsage || rec.Exit != exitUsage || rec.Command != c.args[0] {
+				t.Errorf("final record %+v, want kind usage, exit 2, command %s", rec, c.args[0])
+			}
 			if code != exitUsage {
 				t.Errorf("exit %d, want 2", code)
 			}
@@ -69,6 +73,7 @@ func TestMistypedFlagSaidOnceWithTheCommandsUsage(t *testing.T) {
 	}
 	// The whole message, for a command whose flags do not depend on the machine.
 	_, _, errOut := runMain(t, "show", "V", "--josn")
+	errOut, _ = splitExitRecord(t, errOut)
 	if want := "hindcast show: flag provided but not defined: -josn\n\n" + showUsage; errOut != want {
 		t.Errorf("stderr:\n%s\nwant:\n%s", errOut, want)
 	}

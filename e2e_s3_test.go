@@ -587,7 +587,7 @@ func TestS3RunsUnderFaults(t *testing.T) {
 // camera uploaders often lay them out. Every frame whose object exists and
 // is a valid PNG is kept; a missing key and a cut PNG are dropped with their
 // reasons (image_missing, image_corrupt); the run reads them through the
-// config's storage section.
+// config's storage section, from the prefix source.image_roots names.
 func TestS3AbsoluteImageURIs(t *testing.T) {
 	const bucket = "hc-images"
 	srv := s3test.Start(t, bucket)
@@ -633,6 +633,7 @@ func TestS3AbsoluteImageURIs(t *testing.T) {
 	if err := os.WriteFile(cfg, []byte(`dataset: s3-images
 source:
   uri: logs
+  image_roots: ["s3://`+bucket+`/cams/"]
 partitions: 2
 embodiments:
   cart:

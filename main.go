@@ -29,12 +29,27 @@ import (
 	"hindcast/stages"
 )
 
-// Exit codes (SPEC §6).
+// Exit codes (SPEC §6). A run ended by SIGINT or SIGTERM exits 128 plus the
+// signal's number (130, 143), as a shell reports a process a signal ended
+// (common practice), so that a scheduler can tell "stopped" from "broke".
 const (
-	exitOK      = 0
-	exitRuntime = 1
-	exitUsage   = 2
-	exitGate    = 3 // a quality gate failed: the data is bad, nothing was committed
+	exitOK       = 0
+	exitRuntime  = 1
+	exitUsage    = 2
+	exitGate     = 3 // a quality gate failed: the data is bad, nothing was committed
+	exitInternal = 4 // a bug (a panic): retrying will not help; report it
+	exitSignal   = 128
+)
+
+// Kinds of failure, as the final log record names them (field "kind").
+const (
+	kindUsage       = "usage"       // a bad command line: exit 2
+	kindConfig      = "config"      // a bad config: exit 2
+	kindGate        = "gate"        // a quality gate failed: exit 3
+	kindInput       = "input"       // a source object that cannot be read as one: exit 1
+	kindRuntime     = "runtime"     // storage, an existing version, anything else: exit 1
+	kindInternal    = "internal"    // a panic: exit 4
+	kindInterrupted = "interrupted" // SIGINT or SIGTERM: exit 130 or 143
 )
 
 // usageError is a command-line or config problem: exit code 2. When
@@ -193,7 +208,8 @@ func topUsage() string {
 		fmt.Fprintf(&b, "  hindcast %s\n", cmds[name].synopsis)
 	}
 	b.WriteString("\nRun \"hindcast COMMAND --help\" for a command's flags.\n" +
-		"Exit codes: 0 success, 1 runtime failure, 2 usage or config error, 3 a quality gate failed (nothing committed).\n")
+		"Exit codes: 0 success, 1 runtime failure, 2 usage or config error, 3 a quality gate failed (nothing committed),\n" +
+		"4 internal error (a bug), 130 or 143 interrupted by SIGINT or SIGTERM.\n")
 	return b.String()
 }
 
@@ -355,14 +371,54 @@ func ParseCommand(args []string, stderr io.Writer) (*Command, error) {
 
 func main() {
 	tuneGC()
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	ctx, stop := notifyInterrupt(context.Background())
 	code := Main(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	stop()
 	os.Exit(code)
 }
 
-// Main runs one command line and returns its exit code.
-func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+// interruptedError is the cause of a run's context when SIGINT or SIGTERM
+// ended it. It is a context.Canceled, as any cancellation.
+type interruptedError struct{ sig syscall.Signal }
+
+func (e interruptedError) Error() string {
+	return fmt.Sprintf("interrupted by signal %d (%v)", int(e.sig), e.sig)
+}
+func (e interruptedError) Is(target error) bool { return target == context.Canceled }
+
+// notifyInterrupt returns a context cancelled, with an interruptedError as
+// its cause, by the first SIGINT or SIGTERM. The signals' default action
+// comes back then, so a second one ends the process at once.
+func notifyInterrupt(parent context.Context) (context.Context, func()) {
+	ctx, cancel := context.WithCancelCause(parent)
+	ch := make(chan os.Signal, 1)
+	signal.Notify(ch, syscall.SIGINT, syscall.SIGTERM)
+	go func() {
+		select {
+		case s := <-ch:
+			signal.Stop(ch)
+			sig, _ := s.(syscall.Signal)
+			cancel(interruptedError{sig: sig})
+		case <-ctx.Done():
+		}
+	}()
+	return ctx, func() { signal.Stop(ch); cancel(nil) }
+}
+
+// Main runs one command line and returns its exit code. Every error exit
+// ends with one structured log record (see failed); a panic in the command
+// becomes an "internal" record and exit code 4, never Go's exit code 2 of a
+// crash, which a scheduler would take for a config error.
+func Main(ctx context.Context, args []string, stdout, stderr io.Writer) (code int) {
+	ui := newUI(stderr)
+	name := ""
+	defer func() {
+		if r := recover(); r != nil {
+			err := fmt.Errorf("%w: %v\n%s", pipeline.ErrInternal, r, debug.Stack())
+			fmt.Fprintf(stderr, "hindcast %s: %v\n", name, err)
+			code = failed(ui, name, kindInternal, exitInternal, err)
+		}
+	}()
 	c, err := ParseCommand(args, stderr)
 	if err != nil {
 		var ue usageError
@@ -372,8 +428,9 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		} else {
 			fmt.Fprintf(stderr, "hindcast: %v\n\n%s", err, topUsage())
 		}
-		return exitUsage
+		return failed(ui, ue.cmd, kindUsage, exitUsage, err)
 	}
+	name = c.Name
 	if c.Help {
 		// Asked-for help is the answer, so it goes to stdout (and can be
 		// piped to a pager); only help after an error goes to stderr.
@@ -384,7 +441,6 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		}
 		return exitOK
 	}
-	ui := newUI(stderr)
 	switch c.Name {
 	case "run":
 		err = runCommand(ctx, c, stdout, ui)
@@ -406,16 +462,46 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if err == nil {
 		return exitOK
 	}
+	kind, code := classify(ctx, err)
+	if kind == kindInterrupted {
+		err = fmt.Errorf("%w; nothing was committed that a rerun would trust (run it again to go on)", context.Cause(ctx))
+	}
 	fmt.Fprintf(stderr, "hindcast %s: %v\n", c.Name, err)
+	return failed(ui, c.Name, kind, code, err)
+}
+
+// classify tells what kind of failure err is, and its exit code. A run whose
+// context a signal cancelled was interrupted, whatever error the
+// cancellation surfaced as.
+func classify(ctx context.Context, err error) (kind string, code int) {
+	var ie interruptedError
+	if errors.As(context.Cause(ctx), &ie) {
+		return kindInterrupted, exitSignal + int(ie.sig)
+	}
 	var ue usageError
 	var ce *pipeline.ConfigError
-	if errors.As(err, &ue) || errors.As(err, &ce) {
-		return exitUsage
+	switch {
+	case errors.As(err, &ue):
+		return kindUsage, exitUsage
+	case errors.As(err, &ce):
+		return kindConfig, exitUsage
+	case errors.Is(err, pipeline.ErrGateFailed):
+		return kindGate, exitGate
+	case errors.Is(err, pipeline.ErrInternal):
+		return kindInternal, exitInternal
+	case errors.Is(err, pipeline.ErrNotRegular), errors.Is(err, pipeline.ErrChanged):
+		return kindInput, exitRuntime
 	}
-	if errors.Is(err, pipeline.ErrGateFailed) {
-		return exitGate
-	}
-	return exitRuntime
+	return kindRuntime, exitRuntime
+}
+
+// failed writes the final record of an error exit, one JSON line (when the
+// log is not a terminal: see newLogger) that a scheduler can read without
+// parsing the message: level ERROR, msg "command failed", the command, the
+// kind of failure, the error and the exit code. It returns the code.
+func failed(ui *ui, command, kind string, code int, err error) int {
+	ui.log.Error("command failed", "command", command, "kind", kind, "error", err.Error(), "exit", code)
+	return code
 }
 
 // Build stamps set by the linker, for builds without VCS information (a

@@ -208,7 +208,11 @@ func TestMissingSourceFolderExits1(t *testing.T) {
 	}
 	// The user ran `run`: the message names the stage and what it did, and
 	// no inner step ("plan") the user never asked for.
-	last := strings.TrimSpace(errOut[strings.LastIndex(strings.TrimSpace(errOut), "\n")+1:])
+	human, rec := splitExitRecord(t, errOut)
+	if rec.Kind != kindRuntime || rec.Exit != exitRuntime {
+		t.Errorf("final record %+v, want kind runtime, exit 1", rec)
+	}
+	last := strings.TrimSpace(human[strings.LastIndex(strings.TrimSpace(human), "\n")+1:])
 	if want := "hindcast run: ingest: list file://" + filepath.ToSlash(logs) + "/: "; !strings.HasPrefix(last, want) || strings.Contains(last, "plan:") {
 		t.Errorf("last line %q, want it to start %q with no \"plan:\"", last, want)
 	}

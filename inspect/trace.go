@@ -306,24 +306,23 @@ func (t *trTracer) srcURI(key string) string {
 
 // ---- source → files, episodes, rows
 
+// trSourceScan is what a source query gathers: the source's steps by
+// episode id (an episode is in one frames shard, so each set is whole once
+// its shard is read), the partitions that hold them, its episodes and the
+// pairs rows that use one of its frames.
+type trSourceScan struct {
+	key      string
+	steps    map[string]map[int32]bool
+	parts    map[int]bool
+	episodes map[[2]string]*TraceEpisode
+	pairs    trPairRows
+}
+
 func (t *trTracer) source(res *TraceResult, query string) error {
-	m := t.v.Manifest
-	var src *pipeline.Source
-	key := query
-	if strings.Contains(query, "://") {
-		root := strings.TrimSuffix(m.SourceRoot, "/") + "/"
-		key = strings.TrimPrefix(query, root)
+	src, err := t.findSource(query)
+	if err != nil {
+		return err
 	}
-	for i := range m.Sources {
-		if m.Sources[i].Key == key || m.Sources[i].URI == query {
-			src = &m.Sources[i]
-			break
-		}
-	}
-	if src == nil {
-		return fmt.Errorf("source %q is not in the manifest (%d sources under %s)", query, len(m.Sources), m.SourceRoot)
-	}
-	key = src.Key
 	res.Source = &TraceSource{Key: src.Key, URI: src.URI, Lines: src.Lines, Kept: src.Kept,
 		DuplicateOf: src.DuplicateOf, Incomplete: src.Incomplete, Recording: src.Recording, Skipped: src.Skipped}
 	if src.DuplicateOf != nil {
@@ -332,127 +331,25 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 	paths := src.Files
 	if len(paths) == 0 && src.Kept > 0 {
 		// A manifest that kept frames but names no file: search them all.
-		for _, f := range m.Files {
+		for _, f := range t.v.Manifest.Files {
 			if f.Table == "frames" {
 				paths = append(paths, f.Path)
 			}
 		}
 	}
-	episodes := map[[2]string]*TraceEpisode{}
-	// The source's frames: its steps by episode id (an episode is in one
-	// frames shard, so each set is whole once its shard is read), and the
-	// partitions that hold them.
-	steps := map[string]map[int32]bool{}
-	parts := map[int]bool{}
-	pairs := trPairRows{}
+	sc := &trSourceScan{key: src.Key, steps: map[string]map[int32]bool{}, parts: map[int]bool{},
+		episodes: map[[2]string]*TraceEpisode{}, pairs: trPairRows{}}
 	for _, path := range paths {
-		tf, err := t.file(path)
-		if err != nil {
-			return fmt.Errorf("source %s: %w", key, err)
-		}
-		isKey := func(s []byte) bool { return string(s) == key }
-		groups, err := tf.groups("src", trAdmitOne(key), nil)
-		if err != nil {
+		if err := t.sourceFrames(res, sc, path); err != nil {
 			return err
-		}
-		hits, err := tf.find(groups, "src", trAdmitOne(key), isKey, "")
-		if err != nil {
-			return err
-		}
-		if len(hits.rows) == 0 {
-			continue
-		}
-		cols, err := tf.readRows(hits.rows, "episode", "unit", "step", "src_line")
-		if err != nil {
-			return err
-		}
-		ids := map[string]bool{}
-		for i := range hits.rows {
-			id, unit, step := cols[0][i].s, cols[1][i].s, int32(cols[2][i].i)
-			ids[id] = true
-			if steps[id] == nil {
-				steps[id] = map[int32]bool{}
-			}
-			steps[id][step] = true
-			ep := episodes[[2]string{id, unit}]
-			if ep == nil {
-				ep = &TraceEpisode{ID: id, Unit: unit, Split: tf.entry.Split, Partition: tf.entry.Partition}
-				episodes[[2]string{id, unit}] = ep
-			}
-			ep.Steps = append(ep.Steps, TraceStep{Step: step, Src: key, SrcLine: cols[3][i].i})
-		}
-		res.Files = append(res.Files, tf.answer(hits.rows, ids))
-		parts[tf.entry.Partition] = true
-
-		// The pairs of those episodes, in the pairs shard of the same split
-		// and partition, found by the episode column's statistics: of
-		// their rows, those whose step, next step (next_obs) or goal is a
-		// frame of this source.
-		pe, ok := t.pairsOf(tf.entry)
-		if !ok {
-			continue
-		}
-		pf, err := t.file(pe.Path)
-		if err != nil {
-			return err
-		}
-		sorted := trSortedKeys(ids)
-		admit := trAdmitAny(sorted)
-		pgroups, err := pf.groups("episode", admit, nil)
-		if err != nil {
-			return err
-		}
-		phits, err := pf.find(pgroups, "episode", admit, func(s []byte) bool { return ids[string(s)] }, sorted[len(sorted)-1])
-		if err != nil {
-			return err
-		}
-		pcols, err := pf.readRows(phits.rows, "step", "goal_episode", "goal_step")
-		if err != nil {
-			return err
-		}
-		for i, r := range phits.rows {
-			own, step := steps[phits.vals[i]], int32(pcols[0][i].i)
-			if own[step] || own[step+1] || steps[pcols[1][i].s][int32(pcols[2][i].i)] {
-				pairs.add(pe.Path, r, phits.vals[i])
-			}
 		}
 	}
-	// Negative goals are frames of another episode of the same partition,
-	// maybe of another split (SPEC §3.3): the rows that took one of this
-	// source's frames as theirs are found by the goal_episode column of
-	// every pairs shard of those partitions. That column is not sorted, so
-	// this reads most of it; versions made without negatives skip it.
-	if len(steps) > 0 && t.negatives() {
-		sorted := trSortedKeys(steps)
-		admit := trAdmitAny(sorted)
-		for _, f := range t.v.Manifest.Files {
-			if f.Table != "pairs" || !parts[f.Partition] {
-				continue
-			}
-			pf, err := t.file(f.Path)
-			if err != nil {
-				return err
-			}
-			groups, err := pf.groups("goal_episode", admit, nil)
-			if err != nil {
-				return err
-			}
-			hits, err := pf.find(groups, "goal_episode", admit, func(s []byte) bool { return steps[string(s)] != nil }, "")
-			if err != nil {
-				return err
-			}
-			cols, err := pf.readRows(hits.rows, "goal_step", "episode")
-			if err != nil {
-				return err
-			}
-			for i, r := range hits.rows {
-				if steps[hits.vals[i]][int32(cols[0][i].i)] {
-					pairs.add(f.Path, r, cols[1][i].s)
-				}
-			}
+	if len(sc.steps) > 0 && t.negatives() {
+		if err := t.sourceNegatives(sc); err != nil {
+			return err
 		}
 	}
-	for path, rows := range pairs {
+	for path, rows := range sc.pairs {
 		tf, err := t.file(path)
 		if err != nil {
 			return err
@@ -466,9 +363,144 @@ func (t *trTracer) source(res *TraceResult, query string) error {
 		slices.Sort(sorted)
 		res.Files = append(res.Files, tf.answer(sorted, ids))
 	}
-	for _, ep := range episodes {
+	for _, ep := range sc.episodes {
 		sort.Slice(ep.Steps, func(i, j int) bool { return ep.Steps[i].Step < ep.Steps[j].Step })
 		res.Episodes = append(res.Episodes, *ep)
+	}
+	return nil
+}
+
+// findSource finds the manifest's source named by a key relative to the
+// source root or by its URI.
+func (t *trTracer) findSource(query string) (*pipeline.Source, error) {
+	m := t.v.Manifest
+	key := query
+	if strings.Contains(query, "://") {
+		root := strings.TrimSuffix(m.SourceRoot, "/") + "/"
+		key = strings.TrimPrefix(query, root)
+	}
+	for i := range m.Sources {
+		if m.Sources[i].Key == key || m.Sources[i].URI == query {
+			return &m.Sources[i], nil
+		}
+	}
+	return nil, fmt.Errorf("source %q is not in the manifest (%d sources under %s)", query, len(m.Sources), m.SourceRoot)
+}
+
+// sourceFrames finds the source's rows in one frames shard, by the src
+// column's statistics, then the pairs of their episodes.
+func (t *trTracer) sourceFrames(res *TraceResult, sc *trSourceScan, path string) error {
+	key := sc.key
+	tf, err := t.file(path)
+	if err != nil {
+		return fmt.Errorf("source %s: %w", key, err)
+	}
+	isKey := func(s []byte) bool { return string(s) == key }
+	groups, err := tf.groups("src", trAdmitOne(key), nil)
+	if err != nil {
+		return err
+	}
+	hits, err := tf.find(groups, "src", trAdmitOne(key), isKey, "")
+	if err != nil {
+		return err
+	}
+	if len(hits.rows) == 0 {
+		return nil
+	}
+	cols, err := tf.readRows(hits.rows, "episode", "unit", "step", "src_line")
+	if err != nil {
+		return err
+	}
+	ids := map[string]bool{}
+	for i := range hits.rows {
+		id, unit, step := cols[0][i].s, cols[1][i].s, int32(cols[2][i].i)
+		ids[id] = true
+		if sc.steps[id] == nil {
+			sc.steps[id] = map[int32]bool{}
+		}
+		sc.steps[id][step] = true
+		ep := sc.episodes[[2]string{id, unit}]
+		if ep == nil {
+			ep = &TraceEpisode{ID: id, Unit: unit, Split: tf.entry.Split, Partition: tf.entry.Partition}
+			sc.episodes[[2]string{id, unit}] = ep
+		}
+		ep.Steps = append(ep.Steps, TraceStep{Step: step, Src: key, SrcLine: cols[3][i].i})
+	}
+	res.Files = append(res.Files, tf.answer(hits.rows, ids))
+	sc.parts[tf.entry.Partition] = true
+	return t.sourcePairs(sc, tf.entry, ids)
+}
+
+// sourcePairs finds the pairs of the episodes ids, in the pairs shard of
+// the same split and partition as their frames, by the episode column's
+// statistics: of their rows, those whose step, next step (next_obs) or
+// goal is a frame of this source.
+func (t *trTracer) sourcePairs(sc *trSourceScan, frames pipeline.File, ids map[string]bool) error {
+	pe, ok := t.pairsOf(frames)
+	if !ok {
+		return nil
+	}
+	pf, err := t.file(pe.Path)
+	if err != nil {
+		return err
+	}
+	sorted := trSortedKeys(ids)
+	admit := trAdmitAny(sorted)
+	pgroups, err := pf.groups("episode", admit, nil)
+	if err != nil {
+		return err
+	}
+	phits, err := pf.find(pgroups, "episode", admit, func(s []byte) bool { return ids[string(s)] }, sorted[len(sorted)-1])
+	if err != nil {
+		return err
+	}
+	pcols, err := pf.readRows(phits.rows, "step", "goal_episode", "goal_step")
+	if err != nil {
+		return err
+	}
+	for i, r := range phits.rows {
+		own, step := sc.steps[phits.vals[i]], int32(pcols[0][i].i)
+		if own[step] || own[step+1] || sc.steps[pcols[1][i].s][int32(pcols[2][i].i)] {
+			sc.pairs.add(pe.Path, r, phits.vals[i])
+		}
+	}
+	return nil
+}
+
+// sourceNegatives finds the pairs rows that took one of the source's frames
+// as a negative goal. Negative goals are frames of another episode of the
+// same partition, maybe of another split (SPEC §3.3), so they are found by
+// the goal_episode column of every pairs shard of those partitions. That
+// column is not sorted, so this reads most of it; versions made without
+// negatives skip it.
+func (t *trTracer) sourceNegatives(sc *trSourceScan) error {
+	sorted := trSortedKeys(sc.steps)
+	admit := trAdmitAny(sorted)
+	for _, f := range t.v.Manifest.Files {
+		if f.Table != "pairs" || !sc.parts[f.Partition] {
+			continue
+		}
+		pf, err := t.file(f.Path)
+		if err != nil {
+			return err
+		}
+		groups, err := pf.groups("goal_episode", admit, nil)
+		if err != nil {
+			return err
+		}
+		hits, err := pf.find(groups, "goal_episode", admit, func(s []byte) bool { return sc.steps[string(s)] != nil }, "")
+		if err != nil {
+			return err
+		}
+		cols, err := pf.readRows(hits.rows, "goal_step", "episode")
+		if err != nil {
+			return err
+		}
+		for i, r := range hits.rows {
+			if sc.steps[hits.vals[i]][int32(cols[0][i].i)] {
+				sc.pairs.add(f.Path, r, cols[1][i].s)
+			}
+		}
 	}
 	return nil
 }

@@ -420,12 +420,17 @@ func loadRecord(ctx context.Context, work Store, stage, key string) (doneRecord,
 	return rec, true, nil
 }
 
+// ErrInternal marks a failure that is a bug in hindcast (a panic), not in
+// its inputs or storage: the CLI exits 4 for it, so that a scheduler does
+// not retry it as a passing fault.
+var ErrInternal = errors.New("internal error")
+
 // safeDo runs one item and turns a panic into that item's error, so a bug
-// fails the run (exit 1, nothing committed) instead of killing the process.
+// fails the run (exit 4, nothing committed) instead of killing the process.
 func safeDo(ctx context.Context, env *Env, st Stage, it Item) (out any, err error) {
 	defer func() {
 		if r := recover(); r != nil {
-			err = fmt.Errorf("internal error: %v\n%s", r, debug.Stack())
+			err = fmt.Errorf("%w: %v\n%s", ErrInternal, r, debug.Stack())
 		}
 	}()
 	return st.Do(ctx, env, it)

@@ -13,6 +13,7 @@ import (
 	"path/filepath"
 	"sort"
 	"strings"
+	"syscall"
 )
 
 // ErrNotFound is returned (wrapped) by a Store when a key does not exist.
@@ -276,22 +277,122 @@ func (s *LocalStore) Stat(ctx context.Context, key string) (ObjectInfo, error) {
 	return localInfo(key, info), nil
 }
 
-// Open implements Store.
+// ErrNotRegular is returned (wrapped) when a local object is not a regular
+// file: a named pipe, a device or a socket (or a link to one). Reading one
+// would block forever (a FIFO without a writer) or never end (/dev/zero), so
+// it is refused at open, and the object's item fails naming it.
+var ErrNotRegular = errors.New("not a regular file")
+
+// ErrChanged is returned (wrapped) when a local object was modified while it
+// was read: the bytes read may be a splice of two contents, so neither its
+// SHA-256 nor anything derived from it can be trusted.
+var ErrChanged = errors.New("changed while it was read")
+
+// Open implements Store. The file is opened without blocking (O_NONBLOCK:
+// opening a FIFO for reading would otherwise wait for a writer, past any
+// signal) and refused unless it is a regular file, which ignores the flag.
+// The reader compares the file's state at open with its state when it
+// reaches the end or is closed, and fails with ErrChanged when they differ.
 func (s *LocalStore) Open(ctx context.Context, key string, offset int64) (io.ReadCloser, error) {
-	f, err := os.Open(s.Path(key))
+	uri := JoinURI(s.URI(), key)
+	f, err := os.OpenFile(s.Path(key), os.O_RDONLY|syscall.O_NONBLOCK, 0)
 	if err != nil {
 		if errors.Is(err, fs.ErrNotExist) {
-			return nil, fmt.Errorf("open %s: %w", JoinURI(s.URI(), key), ErrNotFound)
+			return nil, fmt.Errorf("open %s: %w", uri, ErrNotFound)
 		}
-		return nil, fmt.Errorf("open %s: %w", JoinURI(s.URI(), key), err)
+		return nil, fmt.Errorf("open %s: %w", uri, err)
+	}
+	info, err := f.Stat()
+	if err != nil {
+		f.Close()
+		return nil, fmt.Errorf("open %s: %w", uri, err)
+	}
+	if !info.Mode().IsRegular() {
+		f.Close()
+		return nil, fmt.Errorf("open %s: %w (%s); remove it or leave it out with source.exclude", uri, ErrNotRegular, fileKind(info.Mode()))
 	}
 	if offset > 0 {
 		if _, err := f.Seek(offset, io.SeekStart); err != nil {
 			f.Close()
-			return nil, fmt.Errorf("open %s at %d: %w", JoinURI(s.URI(), key), offset, err)
+			return nil, fmt.Errorf("open %s at %d: %w", uri, offset, err)
 		}
 	}
-	return f, nil
+	return &localReader{f: f, uri: uri, at: stateOf(info), etag: localInfo(key, info).ETag}, nil
+}
+
+// fileKind names what a non-regular file is, for messages.
+func fileKind(m fs.FileMode) string {
+	switch {
+	case m&fs.ModeNamedPipe != 0:
+		return "a named pipe"
+	case m&fs.ModeCharDevice != 0:
+		return "a character device"
+	case m&fs.ModeDevice != 0:
+		return "a block device"
+	case m&fs.ModeSocket != 0:
+		return "a socket"
+	case m.IsDir():
+		return "a folder"
+	}
+	return "mode " + m.String()
+}
+
+// localReader reads an opened local file and checks, when it reaches the
+// end and when it is closed, that the file is still as it was at open: same
+// size, modification time, change time and inode (fileState). A file
+// rewritten in place with the same size changes its times. A file replaced
+// by another (renamed over it) is no splice: the open file keeps the inode it
+// had, and is read whole as it was. What the check cannot see is a rewrite
+// within the file system's timestamp granularity of the write before the
+// open, which leaves both times as they were.
+type localReader struct {
+	f       *os.File
+	uri     string
+	at      fileState
+	etag    string
+	checked bool
+	err     error // the result of the check, once made
+}
+
+// ETag is the local stand-in tag (size and modification time) of the file
+// as it was opened, so a reader can tell it differs from its listing.
+func (r *localReader) ETag() string { return r.etag }
+
+func (r *localReader) Read(p []byte) (int, error) {
+	n, err := r.f.Read(p)
+	if err == io.EOF {
+		if cerr := r.check(); cerr != nil {
+			return n, cerr
+		}
+	}
+	return n, err
+}
+
+// check compares the file's state now with its state at open, once.
+func (r *localReader) check() error {
+	if r.checked {
+		return r.err
+	}
+	r.checked = true
+	info, err := r.f.Stat()
+	if err != nil {
+		r.err = fmt.Errorf("read %s: %w", r.uri, err)
+		return r.err
+	}
+	if what := r.at.diff(stateOf(info)); what != "" {
+		r.err = fmt.Errorf("%s %w (%s differ from when it was opened); run again", r.uri, ErrChanged, what)
+	}
+	return r.err
+}
+
+// Close closes the file; a file that changed since it was opened makes it
+// fail with ErrChanged, for readers that stop before the end.
+func (r *localReader) Close() error {
+	cerr := r.check()
+	if err := r.f.Close(); err != nil {
+		return fmt.Errorf("close %s: %w", r.uri, err)
+	}
+	return cerr
 }
 
 // Create implements Store.

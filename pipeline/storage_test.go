@@ -166,8 +166,10 @@ func TestLocalStoreDeleteUnfinished(t *testing.T) {
 }
 
 // TestClearUnfinished is what a commit does to a version folder without a
-// manifest: files the new manifest will not list and unfinished writes go;
-// those it will list stay (the same bytes, published again or kept).
+// manifest before it publishes: files the new manifest will not list go;
+// those it will list stay (the same bytes, published again or kept), and so
+// do unfinished writes, which may be a live commit's of the same content
+// (Commit removes them once its manifest is in place).
 func TestClearUnfinished(t *testing.T) {
 	ctx := context.Background()
 	s := NewLocalStore(t.TempDir())
@@ -176,22 +178,22 @@ func TestClearUnfinished(t *testing.T) {
 		localWrite(t, s, k, "x")
 	}
 	keep := map[string]bool{"ds/v1/pairs/part-00000.parquet": true, "ds/v1/frames/part-00000.parquet": true}
-	if err := clearUnfinished(ctx, s, "ds/v1/", keep); err != nil {
+	if err := clearStale(ctx, s, "ds/v1/", keep); err != nil {
 		t.Fatal(err)
 	}
 	if got, want := localKeys(t, s, ""), []string{"ds/v1/pairs/part-00000.parquet", "ds/v2/pairs/part-99999.parquet"}; !slices.Equal(got, want) {
 		t.Errorf("keys after clearing ds/v1/: %q, want %q", got, want)
 	}
-	if _, err := os.Stat(s.Path("ds/v1/manifest.json" + tempMarker + "5")); !errors.Is(err, fs.ErrNotExist) {
-		t.Errorf("the half-written manifest after clearing: %v, want gone", err)
+	if _, err := os.Stat(s.Path("ds/v1/manifest.json" + tempMarker + "5")); err != nil {
+		t.Errorf("the unfinished write after clearing: %v, want it left", err)
 	}
-	if err := clearUnfinished(ctx, s, "ds/v3/", keep); err != nil {
+	if err := clearStale(ctx, s, "ds/v3/", keep); err != nil {
 		t.Errorf("clearing a folder that does not exist: %v", err)
 	}
 	// A commit of the same version that finished meanwhile: the folder is
 	// a version now, and nothing in it is touched.
 	localWrite(t, s, "ds/v2/manifest.json", "{}")
-	if err := clearUnfinished(ctx, s, "ds/v2/", keep); !errors.Is(err, ErrVersionExists) {
+	if err := clearStale(ctx, s, "ds/v2/", keep); !errors.Is(err, ErrVersionExists) {
 		t.Errorf("clearing a folder that became a version: %v, want ErrVersionExists", err)
 	}
 	if got, want := localKeys(t, s, "ds/v2/"), []string{"ds/v2/manifest.json", "ds/v2/pairs/part-99999.parquet"}; !slices.Equal(got, want) {

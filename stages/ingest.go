@@ -215,7 +215,9 @@ func (in *ingester) run(ctx context.Context) error {
 	if src.err != nil {
 		return src.err
 	}
-	in.startChecks((&imageFetcher{env: in.env}).fetch)
+	fe := newImageFetcher(in.env)
+	defer fe.close()
+	in.startChecks(fe.fetch)
 	body, err := decompress(raw)
 	if err != nil {
 		if src.err != nil {

@@ -353,8 +353,8 @@ func TestIngestReasonFixtures(t *testing.T) {
 
 // TestIngestImageURIs covers the reference forms of SPEC §1 `img` not in
 // the fixtures: absolute file:// URIs (here to a folder outside the source
-// root), a JPEG data: URI, a relative key mixed with an absolute URI, and a
-// data: URI whose payload is not base64.
+// root, named in source.image_roots), a JPEG data: URI, a relative key
+// mixed with an absolute URI, and a data: URI whose payload is not base64.
 func TestIngestImageURIs(t *testing.T) {
 	imgs := fixtureImages(t)
 	outside := t.TempDir()
@@ -388,7 +388,7 @@ func TestIngestImageURIs(t *testing.T) {
 			line(12000, "s3://ab/ok.png", abs("ok.jpg")),
 		),
 	}
-	m := runPipeline(t, fixtureConfig(100000), files)
+	m := runPipeline(t, withImageRoots(t, fixtureConfig(100000), "file://"+filepath.ToSlash(outside)), files)
 	srcs := []srcWant{{"abs.jsonl", 12, 4, map[string]int64{pipeline.ImageMissing: 6, pipeline.ImageCorrupt: 2}}}
 	wantSource(t, m, "abs.jsonl", 12, 4, srcs[0].dropped)
 	wantFunnel(t, m, funnelOf(1, 0, srcs, 4, 1, 3))
@@ -912,7 +912,7 @@ func TestIngestFileURIPercentEncoded(t *testing.T) {
 	line := func(ts int64, front, wrist string) string {
 		return fmt.Sprintf(`{"unit":"p1","embodiment":"cam","t":%d,"obs":[1,2,3],"img":{"front":%q,"wrist":%q}}`, ts, front, wrist)
 	}
-	m := runPipeline(t, fixtureConfig(100000), map[string][]byte{"pct.jsonl": jsonLines(
+	m := runPipeline(t, withImageRoots(t, fixtureConfig(100000), root), map[string][]byte{"pct.jsonl": jsonLines(
 		line(1000, "frames/ok.png", root+"/c%20d/ok.jpg"),   // folder name encoded
 		line(2000, root+"/a%20b.png", root+"/c%20d/ok.jpg"), // file name encoded
 	), "frames/ok.png": imgs["frames/ok.png"]})
@@ -1002,8 +1002,10 @@ func TestIngestObjectChangedSinceListing(t *testing.T) {
 		t.Fatal(err)
 	}
 	env := &pipeline.Env{Config: cfg, Source: pipeline.NewLocalStore(filepath.Join(dir, "src")), Work: pipeline.NewLocalStore(filepath.Join(dir, "work"))}
-	// As listed before the object grew by one line.
-	listed := pipeline.ObjectInfo{Key: "a.jsonl", Size: int64(len(body)) - 10, ETag: "listed"}
+	// As listed before the object grew by one line, without a tag, so that
+	// the size alone tells (a local reader's tag is checked at open, see
+	// TestIngestLocalObjectTagChangedSinceListing).
+	listed := pipeline.ObjectInfo{Key: "a.jsonl", Size: int64(len(body)) - 10}
 	_, err = Ingest{}.Do(context.Background(), env, pipeline.Item{ID: "a.jsonl", Key: "k", Meta: listed})
 	want := fmt.Sprintf("changed since it was listed (%d bytes read, %d listed)", len(body), len(body)-10)
 	if err == nil || !strings.Contains(err.Error(), want) || !strings.Contains(err.Error(), "a.jsonl") {

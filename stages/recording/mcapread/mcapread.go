@@ -49,6 +49,11 @@ type Channel struct {
 	Topic           string
 	MessageEncoding string
 	Schema          *Schema
+	// pending marks a channel whose messages came before its Channel record
+	// could be read (it was in a bad chunk): its messages are held, and
+	// handed over only if a later Channel record (the summary repeats
+	// them) says what it is.
+	pending bool
 }
 
 // Message is one message as ReadOrdered hands it over. Data is valid only
@@ -228,8 +233,10 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 			if err != nil {
 				return false
 			}
-			if _, ok := chans[c.ID]; !ok {
+			if have, ok := chans[c.ID]; !ok {
 				chans[c.ID] = &Channel{ID: c.ID, Topic: c.Topic, MessageEncoding: c.MessageEncoding, Schema: schemas[c.SchemaID]}
+			} else if have.pending {
+				*have = Channel{ID: c.ID, Topic: c.Topic, MessageEncoding: c.MessageEncoding, Schema: schemas[c.SchemaID]}
 			}
 		case mcap.OpMessage:
 			m, err := mcap.ParseMessage(rec)
@@ -237,7 +244,11 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 				return false
 			}
 			ch := chans[m.ChannelID]
-			if ch == nil || (opts.Topics != nil && !opts.Topics(ch.Topic)) {
+			if ch == nil {
+				ch = &Channel{ID: m.ChannelID, pending: true}
+				chans[m.ChannelID] = ch
+			}
+			if !ch.pending && opts.Topics != nil && !opts.Topics(ch.Topic) {
 				return true
 			}
 			t := m.LogTime
@@ -280,6 +291,12 @@ func ReadOrdered(ctx context.Context, src Source, opts Options, fn func(*Message
 		}
 		op := mcap.OpCode(hdr[0])
 		if op == mcap.OpFooter {
+			// The file ends with the magic again (MCAP spec, mcap.dev): a
+			// file cut inside it is cut short too.
+			var end [8]byte
+			if _, err := io.ReadFull(br, end[:]); err != nil || end != Magic {
+				res.Incomplete = true
+			}
 			break
 		}
 		if op != mcap.OpChunk {

@@ -24,6 +24,7 @@ const defaultSortBuffer = 64 << 20
 type sorter struct {
 	limit   int64
 	dir     string
+	topics  func(string) bool // Options.Topics, for channels read after their messages
 	held    []held
 	bytes   int64
 	runs    []*os.File
@@ -35,7 +36,7 @@ func newSorter(opts Options) *sorter {
 	if limit <= 0 {
 		limit = defaultSortBuffer
 	}
-	return &sorter{limit: limit, dir: opts.ScratchDir}
+	return &sorter{limit: limit, dir: opts.ScratchDir, topics: opts.Topics}
 }
 
 func (s *sorter) add(h held) error {
@@ -144,6 +145,9 @@ func (h *runHeap) Pop() any {
 // emit hands fn every message in (time, position) order.
 func (s *sorter) emit(ctx context.Context, chans map[uint16]*Channel, fn func(*Message) error, res *Result) error {
 	give := func(h *held) error {
+		if h.ch == nil || h.ch.pending || (s.topics != nil && !s.topics(h.ch.Topic)) {
+			return nil // a channel never defined, or one not selected
+		}
 		if err := fn(&Message{Channel: h.ch, LogTime: h.log, PublishTime: h.pub, Time: h.t, Seq: h.seq, Data: h.data}); err != nil {
 			return err
 		}
