@@ -290,6 +290,10 @@ func TestOpenVersionSaysWhatTheLocationIs(t *testing.T) {
 
 	// Through the command line: exit 1, the message once.
 	code, out, errOut := runMain(t, "show", filepath.Join(root, "d"))
+	errOut, rec := splitExitRecord(t, errOut)
+	if rec.Kind != kindRuntime || rec.Exit != exitRuntime || rec.Command != "show" {
+		t.Errorf("show of a dataset folder: final record %+v, want kind runtime, exit 1, command show", rec)
+	}
 	if want := "hindcast show: open " + uri(filepath.Join(root, "d")) + "/: a dataset folder, not a version; its versions: v1, v2\n"; code != exitRuntime || out != "" || errOut != want {
 		t.Errorf("show of a dataset folder: exit %d, stdout %q, stderr %q; want exit 1, stderr %q", code, out, errOut, want)
 	}

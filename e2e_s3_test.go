@@ -259,6 +259,18 @@ func TestS3DemoEndToEnd(t *testing.T) {
 		t.Fatal(err)
 	}
 	cfgA := filepath.Join(dir, "hindcast.yaml")
+	// The demo's file:// image references name the local logs folder; the
+	// S3 run below reads them as an image root (SPEC §1), and both runs
+	// name it, so that their configs differ only in where things are.
+	demoCfg, err := os.ReadFile(cfgA)
+	if err != nil {
+		t.Fatal(err)
+	}
+	withRoots := s3Replace(t, string(demoCfg), `(?m)^  uri: logs$`,
+		"  uri: logs\n  image_roots: [\"file://"+filepath.ToSlash(filepath.Join(dir, "logs"))+"/\"]")
+	if err := os.WriteFile(cfgA, []byte(withRoots), 0o644); err != nil {
+		t.Fatal(err)
+	}
 	s3MustRun(t, srv.SecretKey, "run", "--config", cfgA, "--version", "a", "--parallel", "2")
 	rawA, err := os.ReadFile(filepath.Join(dir, "datasets", "larkspur-aisles", "a", "manifest.json"))
 	if err != nil {
@@ -267,7 +279,8 @@ func TestS3DemoEndToEnd(t *testing.T) {
 	mA := s3ParseManifest(t, rawA)
 
 	// The same logs, images included, in the bucket: relative image keys
-	// then resolve there; the file:// ones still name the local folder.
+	// then resolve there; the file:// ones still name the local folder,
+	// an image root.
 	n := s3Upload(t, c, bucket, filepath.Join(dir, "logs"), "logs/")
 	base, err := os.ReadFile(cfgA)
 	if err != nil {

@@ -6,6 +6,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"os"
 	"path/filepath"
 	"strings"
 	"syscall"
@@ -119,5 +120,34 @@ func TestExitRecordInterruptedRun(t *testing.T) {
 	}
 	if m := manifests(t, dir); len(m) != 0 {
 		t.Errorf("an interrupted run wrote %v", m)
+	}
+}
+
+// TestUnwritableOutputExits1BeforeWork: an output that cannot be written
+// (its parent is a file: ENOTDIR for any user, root included) fails the run
+// with exit 1 before the first stage, naming the output; the final record
+// says kind runtime.
+func TestUnwritableOutputExits1BeforeWork(t *testing.T) {
+	cfg, dir := fixtureJob(t)
+	blocker := filepath.Join(dir, "job", "blocker")
+	writeFile(t, blocker, []byte("a file, not a folder"))
+	text, err := os.ReadFile(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(string(text), "\noutput: out\n") {
+		t.Fatalf("fixture config has no output: out")
+	}
+	writeFile(t, cfg, []byte(strings.Replace(string(text), "\noutput: out\n", "\noutput: blocker/out\n", 1)))
+	code, _, errOut := runMain(t, "run", "--config", cfg, "--version", "v1")
+	human, rec := splitExitRecord(t, errOut)
+	if code != exitRuntime || rec.Kind != kindRuntime || rec.Exit != exitRuntime {
+		t.Errorf("exit %d, record %+v; want exit 1, kind runtime", code, rec)
+	}
+	if want := "output file://" + filepath.ToSlash(filepath.Join(blocker, "out")) + "/ cannot be written"; !strings.Contains(human, want) {
+		t.Errorf("stderr does not say %q:\n%s", want, human)
+	}
+	if strings.Contains(errOut, `"stage start"`) {
+		t.Errorf("a stage started before the failure:\n%s", errOut)
 	}
 }

@@ -464,7 +464,7 @@ func Main(ctx context.Context, args []string, stdout, stderr io.Writer) (code in
 	}
 	kind, code := classify(ctx, err)
 	if kind == kindInterrupted {
-		err = fmt.Errorf("%w; nothing was committed that a rerun would trust (run it again to go on)", context.Cause(ctx))
+		err = fmt.Errorf("%w: stopped; run it again to go on (finished items are kept, unfinished ones redone)", context.Cause(ctx))
 	}
 	fmt.Fprintf(stderr, "hindcast %s: %v\n", c.Name, err)
 	return failed(ui, c.Name, kind, code, err)

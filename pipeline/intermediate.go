@@ -4,8 +4,10 @@ import (
 	"bufio"
 	"container/heap"
 	"context"
+	"errors"
 	"fmt"
 	"io"
+	"slices"
 	"strings"
 
 	"github.com/apache/arrow-go/v18/arrow"
@@ -20,14 +22,11 @@ import (
 // Arrow tool can open when a stage's output needs looking at, read and written
 // in record batches so no stage holds more than a batch per open stream.
 
-// batchRows and batchBytes bound one record batch: rows for vectors, bytes for
-// frames that carry camera images. A merge holds a batch of each of up to
-// maxFanIn (64) streams at once, so 1 MiB a batch keeps a merge of camera
-// frames near 64 MiB.
-const (
-	batchRows  = 1024
-	batchBytes = 1 << 20
-)
+// batchRows bounds one record batch. Frames carry no camera bytes (only
+// where they are, see ImageWriter), so a batch of frames is a few hundred
+// bytes a row, and a merge of up to maxFanIn (64) streams holds a batch of
+// each.
+const batchRows = 1024
 
 // readBuffer is the read-ahead of one intermediate stream. A merge holds
 // up to maxFanIn streams open, so this and a batch bound its memory.
@@ -74,15 +73,15 @@ func (bs *batchStream) Close() error {
 // FrameWriter appends frames to an Arrow IPC stream.
 type FrameWriter struct {
 	batchStream
-	bytes int
 	total int64
 
 	unit, emb, src, task, episode *array.StringBuilder
 	t, line                       *array.Int64Builder
-	obs, act, imgRef, img         *array.ListBuilder
+	obs, act, imgRef              *array.ListBuilder
 	obsV, actV                    floatBuilder
-	imgRefV                       *array.StringBuilder
-	imgV                          *array.BinaryBuilder
+	imgRefV, imgObj               *array.StringBuilder
+	imgOff, imgLen                *array.ListBuilder
+	imgOffV, imgLenV              *array.Int64Builder
 	ev                            *array.Int8Builder
 	success, last                 *array.BooleanBuilder
 	step                          *array.Int32Builder
@@ -160,16 +159,27 @@ func NewFrameWriter(w io.Writer, f32 bool) *FrameWriter {
 	fw.success = b.Field(9).(*array.BooleanBuilder)
 	fw.imgRef = b.Field(10).(*array.ListBuilder)
 	fw.imgRefV = fw.imgRef.ValueBuilder().(*array.StringBuilder)
-	fw.img = b.Field(11).(*array.ListBuilder)
-	fw.imgV = fw.img.ValueBuilder().(*array.BinaryBuilder)
-	fw.episode = b.Field(12).(*array.StringBuilder)
-	fw.step = b.Field(13).(*array.Int32Builder)
-	fw.last = b.Field(14).(*array.BooleanBuilder)
+	fw.imgObj = b.Field(11).(*array.StringBuilder)
+	fw.imgOff = b.Field(12).(*array.ListBuilder)
+	fw.imgOffV = fw.imgOff.ValueBuilder().(*array.Int64Builder)
+	fw.imgLen = b.Field(13).(*array.ListBuilder)
+	fw.imgLenV = fw.imgLen.ValueBuilder().(*array.Int64Builder)
+	fw.episode = b.Field(14).(*array.StringBuilder)
+	fw.step = b.Field(15).(*array.Int32Builder)
+	fw.last = b.Field(16).(*array.BooleanBuilder)
 	return fw
 }
 
-// Write appends one frame.
+// ErrImagesInFrame is returned by FrameWriter.Write for a frame that holds
+// camera bytes instead of their place in the work area (ImageWriter).
+var ErrImagesInFrame = errors.New("frame holds camera bytes; intermediates carry only where they are (ImageWriter)")
+
+// Write appends one frame. A frame with camera bytes must have them stored
+// first (ImageWriter.Put): the stream carries only f.ImgObj and f.ImgAt.
 func (fw *FrameWriter) Write(f *schemas.Frame) error {
+	if len(f.Img) > 0 {
+		return ErrImagesInFrame
+	}
 	fw.unit.Append(f.Unit)
 	fw.emb.Append(f.Embodiment)
 	fw.t.Append(f.T)
@@ -195,21 +205,22 @@ func (fw *FrameWriter) Write(f *schemas.Frame) error {
 		fw.success.AppendNull()
 	}
 	fw.imgRef.Append(true)
-	fw.img.Append(true)
-	n := 0
-	for i, r := range f.ImgRef {
+	for _, r := range f.ImgRef {
 		fw.imgRefV.Append(r)
-		fw.imgV.Append(f.Img[i])
-		n += len(f.Img[i])
+	}
+	fw.imgObj.Append(f.ImgObj)
+	fw.imgOff.Append(true)
+	fw.imgLen.Append(true)
+	for _, at := range f.ImgAt {
+		fw.imgOffV.Append(at.Off)
+		fw.imgLenV.Append(at.Len)
 	}
 	fw.episode.Append(f.Episode)
 	fw.step.Append(f.Step)
 	fw.last.Append(f.Last)
 	fw.rows++
 	fw.total++
-	fw.bytes += n + 8*(len(f.Obs)+len(f.Act)) + 64
-	if fw.rows >= batchRows || fw.bytes >= batchBytes {
-		fw.bytes = 0
+	if fw.rows >= batchRows {
 		return fw.flush()
 	}
 	return nil
@@ -224,13 +235,15 @@ type FrameReader struct {
 	rec arrow.RecordBatch
 	i   int
 	n   int
+	err error
 
 	unit, emb, src, task, episode *array.String
 	t, line                       *array.Int64
-	obs, act, imgRef, img         *array.List
+	obs, act, imgRef              *array.List
 	obsV, actV                    floatValues
-	imgRefV                       *array.String
-	imgV                          *array.Binary
+	imgRefV, imgObj               *array.String
+	imgOff, imgLen                *array.List
+	imgOffV, imgLenV              *array.Int64
 	ev                            *array.Int8
 	success, last                 *array.Boolean
 	step                          *array.Int32
@@ -248,6 +261,9 @@ func NewFrameReader(r io.Reader) (*FrameReader, error) {
 // Next reads the next frame into f (reusing its slices); it returns false at
 // the end of the stream or on an error (see Err).
 func (fr *FrameReader) Next(f *schemas.Frame) bool {
+	if fr.err != nil {
+		return false
+	}
 	for fr.i >= fr.n {
 		if !fr.r.Next() {
 			return false
@@ -279,10 +295,22 @@ func (fr *FrameReader) Next(f *schemas.Frame) bool {
 	f.Success = f.HasSuccess && fr.success.Value(i)
 	s, e = fr.imgRef.ValueOffsets(i)
 	f.ImgRef = f.ImgRef[:0]
-	f.Img = f.Img[:0]
 	for j := s; j < e; j++ {
 		f.ImgRef = append(f.ImgRef, strings.Clone(fr.imgRefV.Value(int(j))))
-		f.Img = append(f.Img, append([]byte(nil), fr.imgV.Value(int(j))...))
+	}
+	f.Img = f.Img[:0]
+	f.ImgObj = sameOrClone(f.ImgObj, fr.imgObj.Value(i))
+	s, e = fr.imgOff.ValueOffsets(i)
+	f.ImgAt = f.ImgAt[:0]
+	offs, lens := fr.imgOffV.Int64Values(), fr.imgLenV.Int64Values()
+	ls, le := fr.imgLen.ValueOffsets(i)
+	if le-ls != e-s {
+		// A stream this package wrote always pairs them.
+		fr.err = fmt.Errorf("frame %d: %d image offsets but %d lengths", i, e-s, le-ls)
+		return false
+	}
+	for j := int64(0); j < e-s; j++ {
+		f.ImgAt = append(f.ImgAt, schemas.ImageAt{Off: offs[s+j], Len: lens[ls+j]})
 	}
 	f.Episode = sameOrClone(f.Episode, fr.episode.Value(i))
 	f.Step = fr.step.Value(i)
@@ -317,18 +345,228 @@ func (fr *FrameReader) bind(rec arrow.RecordBatch) {
 	fr.success = rec.Column(9).(*array.Boolean)
 	fr.imgRef = rec.Column(10).(*array.List)
 	fr.imgRefV = fr.imgRef.ListValues().(*array.String)
-	fr.img = rec.Column(11).(*array.List)
-	fr.imgV = fr.img.ListValues().(*array.Binary)
-	fr.episode = rec.Column(12).(*array.String)
-	fr.step = rec.Column(13).(*array.Int32)
-	fr.last = rec.Column(14).(*array.Boolean)
+	fr.imgObj = rec.Column(11).(*array.String)
+	fr.imgOff = rec.Column(12).(*array.List)
+	fr.imgOffV = fr.imgOff.ListValues().(*array.Int64)
+	fr.imgLen = rec.Column(13).(*array.List)
+	fr.imgLenV = fr.imgLen.ListValues().(*array.Int64)
+	fr.episode = rec.Column(14).(*array.String)
+	fr.step = rec.Column(15).(*array.Int32)
+	fr.last = rec.Column(16).(*array.Boolean)
 }
 
 // Err is the first read error, if any.
-func (fr *FrameReader) Err() error { return fr.r.Err() }
+func (fr *FrameReader) Err() error {
+	if fr.err != nil {
+		return fr.err
+	}
+	return fr.r.Err()
+}
 
 // Release frees the reader's buffers.
 func (fr *FrameReader) Release() { fr.r.Release() }
+
+// ImageWriter appends the camera bytes of an ingest item's frames to one
+// work object, as they are: JPEG and PNG are compressed already, so a
+// general-purpose codec would only cost time. Frames then carry where their
+// bytes are (Frame.ImgObj, Frame.ImgAt) through every stage up to pack,
+// which reads them back (ImageReader): each camera byte is written once
+// and read once in the work area, whatever stages lie between.
+type ImageWriter struct {
+	ctx   context.Context
+	store Store
+	key   string
+	up    Upload
+	bw    *bufio.Writer
+	n     int64
+}
+
+// NewImageWriter returns a writer of the image object key; the object is
+// created at the first image.
+func NewImageWriter(ctx context.Context, store Store, key string) *ImageWriter {
+	return &ImageWriter{ctx: ctx, store: store, key: key}
+}
+
+// Put appends f's images, records where they are in f.ImgObj and f.ImgAt,
+// and empties f.Img (the bytes may be reused by the caller afterwards).
+func (w *ImageWriter) Put(f *schemas.Frame) error {
+	f.ImgAt = f.ImgAt[:0]
+	f.ImgObj = ""
+	if len(f.Img) == 0 {
+		return nil
+	}
+	if w.up == nil {
+		up, err := w.store.Create(w.ctx, w.key)
+		if err != nil {
+			return err
+		}
+		w.up, w.bw = up, bufio.NewWriterSize(up, 1<<20)
+	}
+	for _, b := range f.Img {
+		var err error
+		if len(b) >= imageDirect {
+			// A camera frame goes to the object as it is, without a
+			// copy through the buffer.
+			if err = w.bw.Flush(); err == nil {
+				_, err = w.up.Write(b)
+			}
+		} else {
+			_, err = w.bw.Write(b)
+		}
+		if err != nil {
+			return fmt.Errorf("write %s: %w", w.key, err)
+		}
+		f.ImgAt = append(f.ImgAt, schemas.ImageAt{Off: w.n, Len: int64(len(b))})
+		w.n += int64(len(b))
+	}
+	f.ImgObj = w.key
+	f.Img = f.Img[:0]
+	return nil
+}
+
+// Commit publishes the object, if any image was put.
+func (w *ImageWriter) Commit() error {
+	if w.up == nil {
+		return nil
+	}
+	if err := w.bw.Flush(); err != nil {
+		return fmt.Errorf("write %s: %w", w.key, err)
+	}
+	up := w.up
+	w.up = nil
+	return up.Commit(false)
+}
+
+// Abort drops an object not committed; after Commit it does nothing.
+func (w *ImageWriter) Abort() {
+	if w.up != nil {
+		w.up.Abort()
+		w.up = nil
+	}
+}
+
+// maxOpenImages bounds the image objects an ImageReader keeps open, and
+// imageSkip the gap it reads through rather than reopening the object.
+const (
+	maxOpenImages = 4
+	imageSkip     = 1 << 20
+	imageBuffer   = 256 << 10
+	// imageDirect is the image size from which an image is written and
+	// read without a copy through a buffer (one system call each).
+	imageDirect = 16 << 10
+)
+
+// ImageReader reads frames' camera bytes back from the objects an
+// ImageWriter wrote. Frames come back in about the order they were written
+// (an episode is one unit's frames in time order, most often from one
+// object), so it keeps a few objects open at their read position, reads
+// through short gaps and reopens at the offset (a ranged read) for a jump
+// back or a long one.
+type ImageReader struct {
+	ctx   context.Context
+	store Store
+	open  []*openImages
+	clock uint64
+}
+
+type openImages struct {
+	key  string
+	rc   io.ReadCloser
+	br   *bufio.Reader
+	pos  int64
+	used uint64
+}
+
+// NewImageReader reads image objects of store.
+func NewImageReader(ctx context.Context, store Store) *ImageReader {
+	return &ImageReader{ctx: ctx, store: store}
+}
+
+// Load reads f's images into f.Img (reusing its buffers) from f.ImgObj at
+// f.ImgAt.
+func (r *ImageReader) Load(f *schemas.Frame) error {
+	f.Img = f.Img[:0]
+	for _, at := range f.ImgAt {
+		var b []byte
+		if len(f.Img) < cap(f.Img) {
+			b = f.Img[: len(f.Img)+1 : cap(f.Img)][len(f.Img)][:0]
+		}
+		b = slices.Grow(b, int(at.Len))[:at.Len]
+		if err := r.read(f.ImgObj, at.Off, b); err != nil {
+			return err
+		}
+		f.Img = append(f.Img, b)
+	}
+	return nil
+}
+
+func (r *ImageReader) read(key string, off int64, dst []byte) error {
+	r.clock++
+	var o *openImages
+	for _, c := range r.open {
+		if c.key == key {
+			o = c
+			break
+		}
+	}
+	if o != nil && (off < o.pos || off-o.pos > imageSkip) {
+		o.rc.Close()
+		o.rc = nil
+	}
+	if o == nil {
+		if len(r.open) == maxOpenImages {
+			lru := 0
+			for i, c := range r.open {
+				if c.used < r.open[lru].used {
+					lru = i
+				}
+			}
+			if r.open[lru].rc != nil {
+				r.open[lru].rc.Close()
+			}
+			r.open = slices.Delete(r.open, lru, lru+1)
+		}
+		o = &openImages{key: key}
+		r.open = append(r.open, o)
+	}
+	o.used = r.clock
+	if o.rc == nil {
+		rc, err := r.store.Open(r.ctx, key, off)
+		if err != nil {
+			return fmt.Errorf("read images %s at %d: %w", key, off, err)
+		}
+		o.rc, o.pos = rc, off
+		if o.br == nil {
+			o.br = bufio.NewReaderSize(rc, imageBuffer)
+		} else {
+			o.br.Reset(rc)
+		}
+	}
+	if _, err := o.br.Discard(int(off - o.pos)); err != nil {
+		return fmt.Errorf("read images %s at %d: %w", key, off, err)
+	}
+	o.pos = off
+	var src io.Reader = o.br
+	if len(dst) >= imageDirect && o.br.Buffered() == 0 {
+		src = o.rc
+	}
+	n, err := io.ReadFull(src, dst)
+	o.pos += int64(n)
+	if err != nil {
+		return fmt.Errorf("read images %s at %d (%d bytes): %w", key, off, len(dst), err)
+	}
+	return nil
+}
+
+// Close closes the objects still open.
+func (r *ImageReader) Close() {
+	for _, o := range r.open {
+		if o.rc != nil {
+			o.rc.Close()
+		}
+	}
+	r.open = nil
+}
 
 // GoalWriter appends goals to an Arrow IPC stream.
 type GoalWriter struct {

@@ -88,6 +88,22 @@ func (j *Job) checkVersion(ctx context.Context, version string) error {
 	return nil
 }
 
+// probe checks that the work area and the output (each when asked) can be
+// written (ProbeWritable).
+func (j *Job) probe(ctx context.Context, work, out bool) error {
+	if work {
+		if err := ProbeWritable(ctx, "work", j.Env.Work); err != nil {
+			return err
+		}
+	}
+	if out {
+		if err := ProbeWritable(ctx, "output", j.Out); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
 func (j *Job) version() string {
 	if j.opt.Version != "" {
 		return j.opt.Version
@@ -132,10 +148,22 @@ func Execute(ctx context.Context, cfg *Config, stages []Stage, opt Options) (*Ma
 		return nil, err
 	}
 	version := j.version()
-	// Refuse a bad or existing version before doing any work.
+	// Refuse a bad version, places that cannot be written, and an existing
+	// version, before doing any work.
+	if err := ValidVersion(version); err != nil {
+		return nil, err
+	}
+	if err := j.probe(ctx, true, true); err != nil {
+		return nil, err
+	}
 	if err := j.checkVersion(ctx, version); err != nil {
 		return nil, err
 	}
+	release, err := LockWork(ctx, j.Env.Work, j.opt.Now)
+	if err != nil {
+		return nil, err
+	}
+	defer release()
 	res, err := RunStages(ctx, j.Env, stages)
 	if err != nil {
 		return nil, err
@@ -150,6 +178,9 @@ func RunWorker(ctx context.Context, cfg *Config, stages []Stage, name string, wo
 	if err != nil {
 		return StageResult{}, err
 	}
+	if err := j.probe(ctx, true, false); err != nil {
+		return StageResult{}, err
+	}
 	return RunShare(ctx, j.Env, stages, name, worker, workers)
 }
 
@@ -162,6 +193,12 @@ func CommitVersion(ctx context.Context, cfg *Config, stages []Stage, opt Options
 		return nil, err
 	}
 	version := j.version()
+	if err := ValidVersion(version); err != nil {
+		return nil, err
+	}
+	if err := j.probe(ctx, true, true); err != nil {
+		return nil, err
+	}
 	if err := j.checkVersion(ctx, version); err != nil {
 		return nil, err
 	}

@@ -8,10 +8,13 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"io/fs"
 	"log/slog"
+	"math/rand/v2"
 	"os"
 	"runtime/debug"
 	"sort"
+	"strings"
 	"sync/atomic"
 	"time"
 
@@ -351,7 +354,7 @@ func runItems(ctx context.Context, env *Env, st Stage, items []Item) ([]Sealed, 
 			began := time.Now()
 			out, err := safeDo(gctx, env, st, it)
 			if err != nil {
-				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, err)
+				return fmt.Errorf("%s %s: %w", st.Name(), it.ID, vanishedWrite(env.Work, err))
 			}
 			raw, err := json.Marshal(out)
 			if err != nil {
@@ -418,6 +421,43 @@ func loadRecord(ctx context.Context, work Store, stage, key string) (doneRecord,
 		return doneRecord{}, false, nil
 	}
 	return rec, true, nil
+}
+
+// ErrWorkShared is wrapped around the failure of an item whose own
+// unfinished write vanished while it ran: only the clearing of the same item
+// by another run using the work area at once removes it.
+var ErrWorkShared = errors.New("another run is using this work area at the same time")
+
+// vanishedWrite explains err when it is an unfinished write of the item
+// (a temporary file, which nothing but a clearing of the item removes)
+// that is no longer there.
+func vanishedWrite(work Store, err error) error {
+	if !errors.Is(err, fs.ErrNotExist) || !strings.Contains(err.Error(), tempMarker) {
+		return err
+	}
+	return fmt.Errorf("%w (%s): it cleared this item while this run wrote it; let one run finish before another starts on the same work area: %w", ErrWorkShared, work.URI(), err)
+}
+
+// probePrefix starts the name of the small object a run writes and deletes
+// at the root of its work area and output before the first stage.
+const probePrefix = ".hindcast-write-probe-"
+
+// ProbeWritable writes a small object at the root of s and deletes it, so
+// that a location the run cannot write (a read-only folder, a bucket the
+// credentials may only read) fails the run before any stage, naming the
+// location, instead of after all four. role names the location's part in
+// the run ("work", "output"). The probe is written exclusively, so it never
+// replaces anything; a process killed between the write and the delete
+// leaves it behind, with its name saying what it is.
+func ProbeWritable(ctx context.Context, role string, s Store) error {
+	key := fmt.Sprintf("%s%d-%08x", probePrefix, os.Getpid(), rand.Uint32())
+	if err := Put(ctx, s, key, []byte("hindcast checks that it can write here; safe to delete\n"), true); err != nil {
+		return fmt.Errorf("%s %s cannot be written: %w", role, s.URI(), err)
+	}
+	if err := s.Delete(ctx, key); err != nil {
+		return fmt.Errorf("%s %s: delete the write probe: %w", role, s.URI(), err)
+	}
+	return nil
 }
 
 // ErrInternal marks a failure that is a bug in hindcast (a panic), not in

@@ -10,9 +10,11 @@ import (
 	"net/http"
 	"net/url"
 	"os"
+	"slices"
 	"sort"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/aws/aws-sdk-go-v2/aws"
@@ -23,6 +25,8 @@ import (
 	"github.com/aws/aws-sdk-go-v2/service/s3/types"
 	"github.com/aws/smithy-go"
 	"github.com/aws/smithy-go/logging"
+	"github.com/aws/smithy-go/middleware"
+	smithyhttp "github.com/aws/smithy-go/transport/http"
 	"golang.org/x/sync/errgroup"
 )
 
@@ -38,6 +42,10 @@ type S3Store struct {
 	opt     StorageConfig
 	retry   *Retrier
 	metrics *Metrics
+	// accepted is set once the service has answered any request with
+	// success, which proves it takes the credentials; until then an
+	// ambiguous HEAD answer is checked (see Stat).
+	accepted *atomic.Bool
 }
 
 // NewS3Store opens s3://bucket/prefix/ with the given connection settings.
@@ -96,7 +104,9 @@ func NewS3Store(ctx context.Context, uri string, opt StorageConfig, metrics *Met
 	if opt.PathStyle != nil {
 		pathStyle = *opt.PathStyle
 	}
+	accepted := &atomic.Bool{}
 	client := s3.NewFromConfig(awsCfg, func(o *s3.Options) {
+		o.APIOptions = append(o.APIOptions, noteAccepted(accepted))
 		if opt.Endpoint != "" {
 			o.BaseEndpoint = aws.String(opt.Endpoint)
 		}
@@ -108,7 +118,7 @@ func NewS3Store(ctx context.Context, uri string, opt StorageConfig, metrics *Met
 		o.ResponseChecksumValidation = aws.ResponseChecksumValidationWhenRequired
 	})
 	return &S3Store{
-		client: client, bucket: u.Host, prefix: prefix, opt: opt, metrics: metrics,
+		client: client, bucket: u.Host, prefix: prefix, opt: opt, metrics: metrics, accepted: accepted,
 		retry: &Retrier{Attempts: opt.Attempts, Base: 50 * time.Millisecond, Cap: 5 * time.Second, Metrics: metrics},
 	}, nil
 }
@@ -159,6 +169,13 @@ func (s *S3Store) List(ctx context.Context, prefix string, fn func(ObjectInfo) e
 
 // Stat implements Store.
 func (s *S3Store) Stat(ctx context.Context, key string) (ObjectInfo, error) {
+	return s.stat(ctx, key, true)
+}
+
+// stat is Stat; check says whether an ambiguous failure is checked for
+// refused credentials (see headRefused), needless where the caller's next
+// request would tell anyway.
+func (s *S3Store) stat(ctx context.Context, key string, check bool) (ObjectInfo, error) {
 	var out *s3.HeadObjectOutput
 	err := s.retry.Do(ctx, func(ctx context.Context) error {
 		ctx, cancel := s.attempt(ctx)
@@ -168,9 +185,55 @@ func (s *S3Store) Stat(ctx context.Context, key string) (ObjectInfo, error) {
 		return err
 	})
 	if err != nil {
+		if check {
+			if perr := s.headRefused(ctx, key, err); perr != nil {
+				err = perr
+			}
+		}
 		return ObjectInfo{}, fmt.Errorf("stat %s: %w", s.uriOf(key), mapS3Error(err))
 	}
 	return ObjectInfo{Key: key, Size: aws.ToInt64(out.ContentLength), ETag: aws.ToString(out.ETag), Version: aws.ToString(out.VersionId)}, nil
+}
+
+// headRefused tells a missing key from refused credentials after a HEAD
+// failed with 404 or 403. A HEAD answer has no body, so no error code: a
+// service may answer an unknown access key with 404 (versitygw v1.8.0
+// does, measured) and a wrong secret with a bare 403. Until the service has
+// once answered this store with success, one GET of the key's first byte,
+// whose error has a body, says which; it returns that GET's error when it
+// names refused credentials, else nil.
+func (s *S3Store) headRefused(ctx context.Context, key string, headErr error) error {
+	if s.accepted.Load() || !isStatus(headErr, http.StatusNotFound) && !isStatus(headErr, http.StatusForbidden) {
+		return nil
+	}
+	err := s.retry.Do(ctx, func(ctx context.Context) error {
+		ctx, cancel := s.attempt(ctx)
+		defer cancel()
+		out, err := s.client.GetObject(ctx, &s3.GetObjectInput{Bucket: aws.String(s.bucket), Key: aws.String(s.prefix + key), Range: aws.String("bytes=0-0")})
+		if err == nil {
+			out.Body.Close()
+		}
+		return err
+	})
+	if err != nil && credentialsRefused(err) {
+		return err
+	}
+	return nil
+}
+
+// noteAccepted adds to every request a step that records a successful
+// answer (any status below 300) in accepted.
+func noteAccepted(accepted *atomic.Bool) func(*middleware.Stack) error {
+	return func(st *middleware.Stack) error {
+		return st.Deserialize.Add(middleware.DeserializeMiddlewareFunc("hindcastNoteAccepted",
+			func(ctx context.Context, in middleware.DeserializeInput, next middleware.DeserializeHandler) (middleware.DeserializeOutput, middleware.Metadata, error) {
+				out, md, err := next.HandleDeserialize(ctx, in)
+				if r, ok := out.RawResponse.(*smithyhttp.Response); ok && r.StatusCode < 300 {
+					accepted.Store(true)
+				}
+				return out, md, err
+			}), middleware.After)
+	}
 }
 
 // Open implements Store: the object from offset, as a reader that resumes a
@@ -342,7 +405,7 @@ func (s *S3Store) DeleteUnfinished(ctx context.Context, prefix string) error {
 			})
 			return err
 		})
-		if isStatus(err, http.StatusNotImplemented) || isStatus(err, http.StatusForbidden) {
+		if isStatus(err, http.StatusNotImplemented) || isStatus(err, http.StatusForbidden) && !credentialsRefused(err) {
 			// A store without the call, or credentials without
 			// s3:ListBucketMultipartUploads: what is pending cannot be
 			// seen, so a bucket lifecycle rule has to abort it.
@@ -360,7 +423,7 @@ func (s *S3Store) DeleteUnfinished(ctx context.Context, prefix string) error {
 				return err
 			})
 			// Gone meanwhile (aborted or completed by its writer) is fine.
-			if err != nil && !isStatus(err, http.StatusNotFound) {
+			if err != nil && (!isStatus(err, http.StatusNotFound) || credentialsRefused(err)) {
 				return fmt.Errorf("abort pending upload s3://%s/%s: %w", s.bucket, aws.ToString(up.Key), mapS3Error(err))
 			}
 		}
@@ -564,7 +627,8 @@ func (u *s3Upload) put(exclusive bool) error {
 	}
 	err := do(exclusive)
 	if exclusive && isStatus(err, http.StatusNotImplemented) {
-		if _, serr := u.s.Stat(u.ctx, u.key); serr == nil {
+		// Refused credentials show in the PUT that follows.
+		if _, serr := u.s.stat(u.ctx, u.key, false); serr == nil {
 			return fmt.Errorf("commit %s: %w (checked with HEAD: this store has no conditional writes)", u.s.uriOf(u.key), ErrExists)
 		} else if !errors.Is(serr, ErrNotFound) {
 			return serr
@@ -631,9 +695,34 @@ func isStatus(err error, status int) bool {
 	return errors.As(err, &re) && re.HTTPStatusCode() == status
 }
 
-// mapS3Error turns "no such key" answers into ErrNotFound, keeping the
-// service's message; credentials never appear in SDK errors.
+// ErrCredentialsRefused is returned (wrapped) when the S3 service refuses
+// the credentials themselves: an unknown access key, a wrong secret, an
+// expired or invalid session token. It is not ErrNotFound, whatever status
+// the service answered with.
+var ErrCredentialsRefused = errors.New("credentials refused")
+
+// refusedCodes are the error codes that refuse the credentials rather than
+// the request: InvalidAccessKeyId, SignatureDoesNotMatch, InvalidToken,
+// ExpiredToken and TokenRefreshRequired (Amazon S3 API reference, "Error
+// responses", from memory), and XAdminUserNotFound, versitygw's answer (with
+// status 404) to an access key it does not know (versitygw v1.8.0,
+// s3err/s3err.go, and measured against it).
+var refusedCodes = []string{"InvalidAccessKeyId", "SignatureDoesNotMatch", "InvalidToken", "ExpiredToken",
+	"TokenRefreshRequired", "XAdminUserNotFound"}
+
+// credentialsRefused reports whether the service refused the credentials.
+func credentialsRefused(err error) bool {
+	var ae smithy.APIError
+	return errors.As(err, &ae) && slices.Contains(refusedCodes, ae.ErrorCode())
+}
+
+// mapS3Error turns "no such key" answers into ErrNotFound and refused
+// credentials into ErrCredentialsRefused, keeping the service's message;
+// credentials never appear in SDK errors.
 func mapS3Error(err error) error {
+	if credentialsRefused(err) {
+		return fmt.Errorf("%w: the S3 service does not accept these credentials; check AWS_ACCESS_KEY_ID and AWS_SECRET_ACCESS_KEY, AWS_PROFILE, or the session token (%v)", ErrCredentialsRefused, err)
+	}
 	var nsk *types.NoSuchKey
 	var nf *types.NotFound
 	if errors.As(err, &nsk) || errors.As(err, &nf) || isStatus(err, http.StatusNotFound) {

@@ -317,7 +317,7 @@ func (s *LocalStore) Open(ctx context.Context, key string, offset int64) (io.Rea
 			return nil, fmt.Errorf("open %s at %d: %w", uri, offset, err)
 		}
 	}
-	return &localReader{f: f, uri: uri, at: stateOf(info), etag: localInfo(key, info).ETag}, nil
+	return &localReader{ctx: ctx, f: f, uri: uri, at: stateOf(info), etag: localInfo(key, info).ETag}, nil
 }
 
 // fileKind names what a non-regular file is, for messages.
@@ -345,7 +345,12 @@ func fileKind(m fs.FileMode) string {
 // had, and is read whole as it was. What the check cannot see is a rewrite
 // within the file system's timestamp granularity of the write before the
 // open, which leaves both times as they were.
+//
+// A read after ctx is done fails with ctx's error, as an S3 read does: every
+// stage streams from a store, so a cancelled run (SIGTERM) stops at its
+// next read instead of at the end of its item.
 type localReader struct {
+	ctx     context.Context
 	f       *os.File
 	uri     string
 	at      fileState
@@ -359,6 +364,9 @@ type localReader struct {
 func (r *localReader) ETag() string { return r.etag }
 
 func (r *localReader) Read(p []byte) (int, error) {
+	if err := r.ctx.Err(); err != nil {
+		return 0, fmt.Errorf("read %s: %w", r.uri, err)
+	}
 	n, err := r.f.Read(p)
 	if err == io.EOF {
 		if cerr := r.check(); cerr != nil {

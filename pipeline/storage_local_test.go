@@ -188,3 +188,24 @@ func TestLocalStoreOpenETag(t *testing.T) {
 		t.Errorf("reader's ETag %v, want the listing's %q", rc, info.ETag)
 	}
 }
+
+// TestLocalStoreReadHonoursContext: a read after the context is done fails
+// with its error, so a cancelled run stops at its next read.
+func TestLocalStoreReadHonoursContext(t *testing.T) {
+	s := NewLocalStore(t.TempDir())
+	localWrite(t, s, "a.jsonl", strings.Repeat("x", 1000))
+	ctx, cancel := context.WithCancel(context.Background())
+	rc, err := s.Open(ctx, "a.jsonl", 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer rc.Close()
+	buf := make([]byte, 100)
+	if n, err := rc.Read(buf); n != 100 || err != nil {
+		t.Fatalf("read before cancel: %d, %v", n, err)
+	}
+	cancel()
+	if n, err := rc.Read(buf); n != 0 || !errors.Is(err, context.Canceled) || !strings.Contains(err.Error(), "a.jsonl") {
+		t.Errorf("read after cancel: %d, %v; want 0 and context.Canceled naming the object", n, err)
+	}
+}

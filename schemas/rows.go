@@ -34,7 +34,14 @@ type Frame struct {
 	Success    bool
 	HasSuccess bool
 	ImgRef     []string // per declared camera of the embodiment, as written
-	Img        [][]byte // per declared camera, the image bytes
+	// Img holds, per declared camera, the image bytes where a stage needs
+	// them (ingest, which checks them, and pack, which writes them). In
+	// between, a frame carries only where they wait in the work area: the
+	// object ImgObj at ImgAt, one place per camera. Camera bytes dominate
+	// a frame's size, and the stages between need none of them.
+	Img    [][]byte
+	ImgObj string
+	ImgAt  []ImageAt
 
 	// Set by the episodes stage.
 	Episode string
@@ -42,20 +49,27 @@ type Frame struct {
 	Last    bool
 }
 
+// ImageAt is where one camera frame's bytes are in a work object: Len
+// bytes from Off.
+type ImageAt struct {
+	Off, Len int64
+}
+
 // Reset empties f for reuse, keeping slice capacity.
 func (f *Frame) Reset() {
-	obs, act, ref, img := f.Obs[:0], f.Act[:0], f.ImgRef[:0], f.Img[:0]
-	*f = Frame{Obs: obs, Act: act, ImgRef: ref, Img: img}
+	obs, act, ref, img, at := f.Obs[:0], f.Act[:0], f.ImgRef[:0], f.Img[:0], f.ImgAt[:0]
+	*f = Frame{Obs: obs, Act: act, ImgRef: ref, Img: img, ImgAt: at}
 }
 
 // CopyFrom makes f a deep copy of g, reusing f's slices.
 func (f *Frame) CopyFrom(g *Frame) {
 	obs, act, ref, img := append(f.Obs[:0], g.Obs...), append(f.Act[:0], g.Act...), append(f.ImgRef[:0], g.ImgRef...), f.Img[:0]
+	at := append(f.ImgAt[:0], g.ImgAt...)
 	for _, b := range g.Img {
 		img = append(img, append([]byte(nil), b...))
 	}
 	*f = *g
-	f.Obs, f.Act, f.ImgRef, f.Img = obs, act, ref, img
+	f.Obs, f.Act, f.ImgRef, f.Img, f.ImgAt = obs, act, ref, img, at
 }
 
 // Floats hands out float64 slices carved from large blocks, so that holding
@@ -85,12 +99,15 @@ func (a *Floats) Copy(v []float64) []float64 {
 func (a *Floats) CopyInto(f, g *Frame) {
 	*f = *g
 	f.Obs, f.Act = a.Copy(g.Obs), a.Copy(g.Act)
-	f.ImgRef, f.Img = nil, nil
+	f.ImgRef, f.Img, f.ImgAt = nil, nil, nil
 	if len(g.ImgRef) > 0 {
 		f.ImgRef = append([]string(nil), g.ImgRef...)
 		for _, b := range g.Img {
 			f.Img = append(f.Img, append([]byte(nil), b...))
 		}
+	}
+	if len(g.ImgAt) > 0 {
+		f.ImgAt = append([]ImageAt(nil), g.ImgAt...)
 	}
 }
 
@@ -134,7 +151,8 @@ func equalStrings(a, b []string) bool {
 // episode files): one schema for both, the episode columns empty before the
 // episodes stage fills them. Vectors are stored in the output float type:
 // ingest has rounded them already, so float32 storage loses nothing and
-// halves what the stages write and read.
+// halves what the stages write and read. Camera bytes are not in the stream:
+// img_obj, img_off and img_len say where they are (Frame.ImgAt).
 func FrameArrow(f32 bool) *arrow.Schema {
 	var elem arrow.DataType = arrow.PrimitiveTypes.Float64
 	if f32 {
@@ -152,7 +170,9 @@ func FrameArrow(f32 bool) *arrow.Schema {
 		{Name: "task", Type: arrow.BinaryTypes.String, Nullable: true},
 		{Name: "success", Type: arrow.FixedWidthTypes.Boolean, Nullable: true},
 		{Name: "img_ref", Type: arrow.ListOf(arrow.BinaryTypes.String)},
-		{Name: "img", Type: arrow.ListOf(arrow.BinaryTypes.Binary)},
+		{Name: "img_obj", Type: arrow.BinaryTypes.String},
+		{Name: "img_off", Type: arrow.ListOf(arrow.PrimitiveTypes.Int64)},
+		{Name: "img_len", Type: arrow.ListOf(arrow.PrimitiveTypes.Int64)},
 		{Name: "episode", Type: arrow.BinaryTypes.String},
 		{Name: "step", Type: arrow.PrimitiveTypes.Int32},
 		{Name: "last", Type: arrow.FixedWidthTypes.Boolean},

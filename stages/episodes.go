@@ -247,9 +247,9 @@ type episodeSink struct {
 func (o *episodeSink) add(ep []schemas.Frame) error {
 	o.buf = append(o.buf, ep)
 	for i := range ep {
-		o.size += frameOverhead + 8*(len(ep[i].Obs)+len(ep[i].Act))
-		for _, b := range ep[i].Img {
-			o.size += len(b)
+		o.size += frameOverhead + 8*(len(ep[i].Obs)+len(ep[i].Act)) + 16*len(ep[i].ImgAt)
+		for _, r := range ep[i].ImgRef {
+			o.size += len(r)
 		}
 	}
 	if o.size >= episodeBufferBytes {

@@ -61,7 +61,8 @@ type imageRoot struct {
 }
 
 // imageFetcher resolves and reads the image references of one object's
-// lines. It holds open folders (os.Root) and stores; close releases them.
+// lines. It keeps the folders it opened (os.Root) and the stores of s3://
+// image roots for the object's other lines; close releases the folders.
 type imageFetcher struct {
 	env   *pipeline.Env
 	max   int64
@@ -106,7 +107,7 @@ func newImageFetcher(env *pipeline.Env) *imageFetcher {
 	return fe
 }
 
-// close releases the folders and stores the fetcher opened.
+// close releases the folders the fetcher opened (stores hold no files).
 func (fe *imageFetcher) close() error {
 	var errs []error
 	for _, r := range fe.local {
@@ -229,7 +230,7 @@ func under(p, dir string) bool {
 }
 
 // safeKey reports whether key names an object under its root: not empty,
-// not absolute, no NUL, and no "." or ".." segment, as written or once
+// not absolute, no NUL, and no ".." segment, as written or once
 // percent-decoded (a store or gateway that maps keys to files might decode
 // or resolve them).
 func safeKey(key string) bool {
@@ -245,7 +246,7 @@ func safeKey(key string) bool {
 			return false
 		}
 		for _, s := range strings.Split(k, "/") {
-			if s == "." || s == ".." {
+			if s == ".." {
 				return false
 			}
 		}

@@ -294,9 +294,10 @@ func TestImageRefFileURISpellings(t *testing.T) {
 		"file://"+src+"/frames/%6Fk.png",         // 20 kept: %6F is "o"
 		"file://"+src+"/frames/../frames/ok.png", // 21 kept: stays inside
 		"frames/ok.png",                          // 22 kept
+		"./frames/ok.png",                        // 23 kept
 	)
-	wantRefCounts(t, r, 22, 6)
-	wantOnlyImages(t, r, d.ok, 6, d.secret)
+	wantRefCounts(t, r, 23, 7)
+	wantOnlyImages(t, r, d.ok, 7, d.secret)
 }
 
 // TestImageRefImageRoots: a folder named in source.image_roots is read,
@@ -593,7 +594,8 @@ func TestImageRefResolve(t *testing.T) {
 	defer fe.close()
 	for _, c := range []struct{ ref, root, key string }{
 		{"a/b.png", "file:///data/fleet/", "a/b.png"},
-		{"a%20b.png", "file:///data/fleet/", "a%20b.png"}, // keys are taken as written
+		{"a%20b.png", "file:///data/fleet/", "a%20b.png"},     // keys are taken as written
+		{"./a/./b.png", "file:///data/fleet/", "./a/./b.png"}, // "." stays where it is
 		{"file:///data/fleet/a/b.png", "file:///data/fleet/", "a/b.png"},
 		{"FILE://LocalHost/data/fleet/a%20b.png", "file:///data/fleet/", "a b.png"},
 		{"file:///data/fleet/x/../a.png", "file:///data/fleet/", "a.png"},
@@ -612,7 +614,7 @@ func TestImageRefResolve(t *testing.T) {
 		}
 	}
 	for _, ref := range []string{
-		"", "/etc/passwd", "../x", "a/../../x", "./a", "a/./b", "%2e%2e/x", "a/%2E%2E/x", "%2Fetc/passwd",
+		"", "/etc/passwd", "../x", "a/../../x", "a/../b", "%2e%2e/x", "a/%2E%2E/x", "%2Fetc/passwd",
 		"file:///etc/passwd", "file:///data/fleet", "file:///data/fleet/", "file:///data/fleetX/a.png",
 		"file:///data/fleet/../x.png", "file:///data/fleet/%2e%2e/x.png", "file:///data%2Ffleet%2F..%2Fx.png",
 		"file://host/data/fleet/a.png", "file:///data/fleet/a%00.png", "file:///data/fleet/a.png?x", "file:///data/fleet/a.png#x",
@@ -623,5 +625,24 @@ func TestImageRefResolve(t *testing.T) {
 		if root, key, err := fe.resolve(ref); !errors.Is(err, errBadRef) {
 			t.Errorf("resolve %q: root %v key %q error %v; want refused", ref, root, key, err)
 		}
+	}
+}
+
+// TestImageRefCountsBytes: an image read from a local folder, which no
+// metered store passes, still counts in the run's bytes read and in the
+// progress display's image bytes.
+func TestImageRefCountsBytes(t *testing.T) {
+	d := newRefDirs(t)
+	env, m, p := fetcherEnv(d.src, 16<<20, nil, fileURI(d.outside)+"/")
+	fe := newImageFetcher(env)
+	defer fe.close()
+	for _, ref := range []string{"frames/ok.png", fileURI(d.outside) + "/secret.jpg"} {
+		if _, err := fe.fetch(context.Background(), ref); err != nil {
+			t.Fatalf("fetch %s: %v", ref, err)
+		}
+	}
+	want := int64(len(d.ok) + len(d.secret))
+	if n, k := m.BytesRead.Load(), p.image.Load(); n != want || k != want {
+		t.Errorf("bytes read %d, progress %d; want %d for both", n, k, want)
 	}
 }

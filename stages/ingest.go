@@ -122,7 +122,12 @@ func (st Ingest) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (a
 	}
 	in.q = newQuarantine(ctx, env, in.dir+"quarantine.arrow")
 	defer in.q.abort()
+	in.images = pipeline.NewImageWriter(ctx, env.Work, in.dir+"images.bin")
+	defer in.images.Abort()
 	if err := in.run(ctx); err != nil {
+		return nil, fmt.Errorf("ingest %s: %w", uri, err)
+	}
+	if err := in.images.Commit(); err != nil {
 		return nil, fmt.Errorf("ingest %s: %w", uri, err)
 	}
 	var err error
@@ -142,8 +147,11 @@ type ingester struct {
 
 	chunk     []schemas.Frame
 	chunkSize int
-	runs      int
-	floats    schemas.Floats
+	// images takes the kept frames' camera bytes as they come: runs and
+	// every later intermediate carry only where they are.
+	images *pipeline.ImageWriter
+	runs   int
+	floats schemas.Floats
 
 	q      *quarantine
 	checks []check
@@ -322,14 +330,17 @@ func (in *ingester) drop(c *Candidate, reason string) {
 	}
 }
 
-// add keeps a copy of f in the current chunk, writing runs out when the
-// chunk is full.
+// add stores f's camera bytes and keeps a copy of the rest of f in the
+// current chunk, writing runs out when the chunk is full.
 func (in *ingester) add(ctx context.Context, f *schemas.Frame) error {
+	if err := in.images.Put(f); err != nil {
+		return err
+	}
 	in.chunk = append(in.chunk, schemas.Frame{})
 	in.floats.CopyInto(&in.chunk[len(in.chunk)-1], f)
-	in.chunkSize += frameOverhead + 8*(len(f.Obs)+len(f.Act)) + len(f.Task)
-	for _, b := range f.Img {
-		in.chunkSize += len(b)
+	in.chunkSize += frameOverhead + 8*(len(f.Obs)+len(f.Act)) + len(f.Task) + 16*len(f.ImgAt)
+	for _, r := range f.ImgRef {
+		in.chunkSize += len(r)
 	}
 	if in.chunkSize >= chunkBytes {
 		return in.flush(ctx)

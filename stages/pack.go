@@ -362,6 +362,10 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 	}
 	defer gc.Close()
 	defer gr.Release()
+	// Camera bytes come back here, from where ingest stored them, for
+	// the frames table only.
+	images := pipeline.NewImageReader(ctx, env.Work)
+	defer images.Close()
 
 	var (
 		ep    []schemas.Frame // the current episode
@@ -384,6 +388,9 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 				ep = append(ep, schemas.Frame{})
 			}
 			ep[len(ep)-1].CopyFrom(&f)
+			if err := images.Load(&ep[len(ep)-1]); err != nil {
+				return nil, fmt.Errorf("frames of %s: %w", id, err)
+			}
 			ok = fr.Next(&f)
 		}
 		key := id

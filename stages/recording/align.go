@@ -30,7 +30,14 @@ type source struct {
 	// buf holds, in time order, the last message at or before the pending
 	// tick and every later one read so far: nothing older is ever needed.
 	buf []entry
+	// spare holds image buffers of pruned entries for the next messages:
+	// camera frames are the bulk of a recording, and a fresh buffer per
+	// frame costs an allocation, its zeroing and the collector's time.
+	spare [][]byte
 }
+
+// maxSpare bounds the image buffers a camera source keeps for reuse.
+const maxSpare = 4
 
 // label is the events, task or success feed: its decoded values queued
 // until the tick that takes them.
@@ -252,7 +259,11 @@ func (a *aligner) add(m *mcapread.Message) error {
 				var b []byte
 				if b, err = imageBytes(w); err == nil {
 					// Data is only valid during the callback.
-					e.img = append([]byte(nil), b...)
+					var buf []byte
+					if n := len(s.spare); n > 0 {
+						buf, s.spare = s.spare[n-1][:0], s.spare[:n-1]
+					}
+					e.img = append(buf, b...)
 				}
 			} else {
 				e.vals, err = numbers(nil, w)
@@ -392,7 +403,8 @@ func (s *source) value(tau int64) (used []int, stale bool) {
 func (a *aligner) emit(tau int64) error {
 	a.stats.Ticks++
 	t := &a.tick
-	// Obs, Act and Images are fresh per tick: the caller may keep them.
+	// Obs and Act are fresh per tick: the caller may keep them. Images
+	// alias the sources' buffers, which are reused once pruned.
 	*t = Tick{Index: a.stats.Ticks, T: tau, HasAct: len(a.act) > 0}
 	// Labels over (τ′, τ]; task is the last ≤ τ whatever its age.
 	if a.events != nil {
@@ -516,6 +528,13 @@ func (a *aligner) prune(now int64) {
 			k++
 		}
 		if k > 0 {
+			// No tick to come uses these entries, and the ticks that did
+			// have been handed over (Tick.Images is valid during fn only).
+			for i := 0; i < k && len(s.spare) < maxSpare; i++ {
+				if s.buf[i].img != nil {
+					s.spare = append(s.spare, s.buf[i].img)
+				}
+			}
 			n := copy(s.buf, s.buf[k:])
 			for i := n; i < len(s.buf); i++ {
 				s.buf[i] = entry{}

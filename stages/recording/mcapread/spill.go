@@ -28,7 +28,7 @@ type sorter struct {
 	held    []held
 	bytes   int64
 	runs    []*os.File
-	scratch []string
+	scratch []string // names still to remove at close ("" : already removed)
 }
 
 func newSorter(opts Options) *sorter {
@@ -61,7 +61,15 @@ func (s *sorter) spill() error {
 		return fmt.Errorf("mcap sort: scratch run: %w", err)
 	}
 	s.runs = append(s.runs, f)
-	s.scratch = append(s.scratch, f.Name())
+	// The run's name is removed at once: an open file lives on until it is
+	// closed (POSIX unlink), so even a process killed with SIGKILL leaves
+	// no scratch file behind. Where removing an open file fails, close
+	// removes it.
+	name := f.Name()
+	if os.Remove(name) == nil {
+		name = ""
+	}
+	s.scratch = append(s.scratch, name)
 	w := bufio.NewWriterSize(f, 1<<16)
 	var hdr [38]byte
 	for _, h := range s.held {
@@ -90,7 +98,9 @@ func (s *sorter) spill() error {
 func (s *sorter) close() {
 	for i, f := range s.runs {
 		f.Close()
-		os.Remove(s.scratch[i])
+		if s.scratch[i] != "" {
+			os.Remove(s.scratch[i])
+		}
 	}
 	s.runs, s.scratch = nil, nil
 }
