@@ -56,7 +56,7 @@ var clBinary struct {
 // buildHindcast builds the hindcast binary once per test process and
 // returns its path. It is built into a folder beside the test binary, which
 // `go test` removes with its work folder when the run ends.
-func buildHindcast(t *testing.T) string {
+func buildHindcast(t testing.TB) string {
 	t.Helper()
 	clBinary.once.Do(func() {
 		base := os.TempDir()

@@ -154,6 +154,13 @@ func pairsSchema[F schemas.Float]() *parquet.Schema {
 // depends on the data alone, so it keeps the output deterministic.
 const packGroupImageBytes = 64 << 20
 
+// packBatchRows is how many rows pack hands a Parquet writer at once, within
+// an episode: memory then grows with an episode's frames (which pack holds,
+// since a pair reads any step of its episode), not with its rows and pairs.
+// A 1,000,000-step episode with 4 goals a step peaked at 4.0 GB RSS when
+// the whole episode's rows and pairs were gathered first.
+const packBatchRows = 4096
+
 // pairWriter hides the output float type of the pairs writer. Rows are
 // gathered one episode at a time: begin converts the episode's vectors once,
 // every row of the episode shares them, and end writes the rows before the
@@ -244,6 +251,9 @@ func (p *typedPairs[F]) add(g *schemas.Goal, goalEpisode, strategy string) error
 		Goal: goal, Reward: g.Reward, Reached: g.Reward == 1, Strategy: strategy,
 		Src: f.Src, SrcLine: f.Line,
 	})
+	if len(p.rows) >= packBatchRows {
+		return p.end()
+	}
 	return nil
 }
 
@@ -255,6 +265,8 @@ func (p *typedPairs[F]) end() error {
 	// earlier ones in the old array, which is never written again.
 	_, err := p.w.Write(p.rows)
 	p.rows = p.rows[:0]
+	// The rows written no longer point into p.neg: it can be refilled.
+	p.neg = p.neg[:0]
 	return err
 }
 
@@ -407,17 +419,21 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 				}
 			}
 		}
-		rows := fs.rowsBuf[:0]
-		for i := range ep {
-			var r parquet.Row
-			if i < cap(rows) {
-				r = rows[:i+1][i] // reuse the row's memory from an earlier episode
+		// Rows go to the writer packBatchRows at a time, so a long episode
+		// costs its frames, not also a row per frame.
+		for start := 0; start < len(ep); start += packBatchRows {
+			rows := fs.rowsBuf[:0]
+			for i := start; i < min(start+packBatchRows, len(ep)); i++ {
+				var r parquet.Row
+				if j := i - start; j < cap(rows) {
+					r = rows[:j+1][j] // reuse the row's memory from an earlier batch
+				}
+				rows = append(rows, ft.Row(r, &ep[i], camIdx[emb]))
 			}
-			rows = append(rows, ft.Row(r, &ep[i], camIdx[emb]))
-		}
-		fs.rowsBuf = rows
-		if _, err := fs.frames.WriteRows(fs.rowsBuf); err != nil {
-			return nil, fmt.Errorf("write frames of %s: %w", id, err)
+			fs.rowsBuf = rows
+			if _, err := fs.frames.WriteRows(fs.rowsBuf); err != nil {
+				return nil, fmt.Errorf("write frames of %s: %w", id, err)
+			}
 		}
 		for i := range ep {
 			for _, b := range ep[i].Img {

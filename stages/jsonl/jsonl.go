@@ -24,8 +24,8 @@ type Line struct {
 	Unit       string
 	Embodiment string
 	T          int64
-	Obs        []float64 // reused between calls (Obs[:0])
-	Act        []float64 // reused; meaningful only when HasAct
+	Obs        []float64 // reused between calls (Obs[:0]); at most MaxValues+1 values
+	Act        []float64 // reused; meaningful only when HasAct; at most MaxValues+1 values
 	HasAct     bool
 	NonFinite  bool   // a NaN, Infinity or -Infinity token, or a number that overflows float64, in obs or act
 	Ev         string // "start", "end", or "" (absent, null, or any other value: ignored per SPEC)
@@ -38,6 +38,15 @@ type Line struct {
 
 // Camera is one member of a line's "img" object, as written.
 type Camera struct{ Name, Ref string }
+
+// MaxValues bounds the numbers kept of one obs or act array: a longer array
+// keeps its first MaxValues+1, enough to tell that it is longer than any
+// embodiment's vector (the config loader refuses obs or act above
+// MaxValues), so the line is still a dim_mismatch, while a 64 MiB line of
+// 3·10⁷ numbers costs 8 MB of floats instead of 256 MB. The rest of the
+// array is still read, so syntax errors, non-numbers and non-finite values
+// anywhere in it count as before.
+const MaxValues = 1_000_000
 
 // maxDepth bounds the nesting of arrays and objects (the line's own object
 // counts as 1) so that a hostile line cannot exhaust the stack.
@@ -672,37 +681,44 @@ func (p *parser) floats(dst []float64) (out []float64, nonFinite bool, why strin
 		p.pos++
 		return out, false, "", nil
 	}
+	// n counts the elements read; out keeps the first MaxValues+1 of them.
+	n := 0
 	for {
+		var f float64
 		p.ws()
 		switch c := p.peek(); {
 		case c == '-' && p.hasPrefix("-Infinity"):
 			p.pos += len("-Infinity")
-			out = append(out, math.Inf(-1))
+			f = math.Inf(-1)
 			nonFinite = true
 		case c == '-' || isDigit(c):
-			f, inf, err := p.float()
+			v, inf, err := p.float()
 			if err != nil {
 				return out, false, "", err
 			}
-			out = append(out, f)
+			f = v
 			nonFinite = nonFinite || inf
 		case c == 'N' && p.hasPrefix("NaN"):
 			p.pos += len("NaN")
-			out = append(out, math.NaN())
+			f = math.NaN()
 			nonFinite = true
 		case c == 'I' && p.hasPrefix("Infinity"):
 			p.pos += len("Infinity")
-			out = append(out, math.Inf(1))
+			f = math.Inf(1)
 			nonFinite = true
 		default:
 			if err := p.skip(3); err != nil {
 				return out, false, "", err
 			}
 			if why == "" {
-				why = "element " + strconv.Itoa(len(out)) + " is not a number"
+				why = "element " + strconv.Itoa(n) + " is not a number"
 			}
-			out = append(out, 0) // keeps element indices in later messages
+			// f stays 0: the element keeps its index in later messages.
 		}
+		if n <= MaxValues {
+			out = append(out, f)
+		}
+		n++
 		p.ws()
 		switch p.peek() {
 		case ',':

@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"math"
 	"regexp"
+	"runtime"
 	"strconv"
 	"strings"
 	"testing"
@@ -734,5 +735,78 @@ func BenchmarkParseEncodingJSON(b *testing.B) {
 		if err := json.Unmarshal(line, &l); err != nil {
 			b.Fatal(err)
 		}
+	}
+}
+
+// TestParseKeepsAtMostMaxValues checks the dimension cap: an obs or act of
+// 10⁷ numbers keeps MaxValues+1 of them (so it is still longer than any
+// embodiment's vector), allocates a bounded amount, and is still read to
+// its end: a non-number or a non-finite value past the cap counts as it
+// would before it, with its true element index.
+func TestParseKeepsAtMostMaxValues(t *testing.T) {
+	const n = 10 * MaxValues
+	array := func(at int, v string) string {
+		var b strings.Builder
+		b.Grow(2 * n)
+		b.WriteByte('[')
+		for i := range n {
+			if i > 0 {
+				b.WriteByte(',')
+			}
+			if i == at {
+				b.WriteString(v)
+			} else {
+				b.WriteByte('0')
+			}
+		}
+		b.WriteByte(']')
+		return b.String()
+	}
+	zeros := array(-1, "")
+	line := func(obs, act string) []byte {
+		return []byte(`{"unit":"u1","embodiment":"e","t":5,"obs":` + obs + `,"act":` + act + `}`)
+	}
+
+	var l Line
+	big := line(zeros, zeros)
+	var before, after runtime.MemStats
+	runtime.ReadMemStats(&before)
+	if err := Parse(big, &l); err != nil {
+		t.Fatalf("10⁷ zeros in obs and act: %v", err)
+	}
+	runtime.ReadMemStats(&after)
+	if len(l.Obs) != MaxValues+1 || len(l.Act) != MaxValues+1 || !l.HasAct || l.NonFinite {
+		t.Errorf("10⁷ zeros: %d obs, %d act values (has act %v, non-finite %v), want %d each, true, false",
+			len(l.Obs), len(l.Act), l.HasAct, l.NonFinite, MaxValues+1)
+	}
+	// Two slices of MaxValues+1 float64 are 16 MB; growing them by appends
+	// (by a quarter at a time once large, Go runtime's growslice) allocates
+	// about five times the final size, 80 MB. Keeping all 2·10⁷ values
+	// would hold 160 MB and allocate about 800 MB.
+	if got := after.TotalAlloc - before.TotalAlloc; got > 200<<20 {
+		t.Errorf("10⁷ zeros in obs and act allocated %d bytes, want at most %d", got, 200<<20)
+	}
+	if c := cap(l.Obs) + cap(l.Act); c > 3*MaxValues {
+		t.Errorf("10⁷ zeros in obs and act: capacity %d values held, want at most %d", c, 3*MaxValues)
+	}
+
+	// A non-number past the cap: malformed, naming its true index.
+	err := Parse(line(array(5*MaxValues, `"x"`), "null"), &l)
+	if want := fmt.Sprintf(`field "obs": element %d is not a number`, 5*MaxValues); err == nil || err.Error() != want {
+		t.Errorf("non-number at element %d: error %v, want %q", 5*MaxValues, err, want)
+	}
+	// A non-finite value past the cap, in act.
+	if err := Parse(line("[1]", array(3*MaxValues, "NaN")), &l); err != nil || !l.NonFinite || len(l.Act) != MaxValues+1 {
+		t.Errorf("NaN at act element %d: error %v, non-finite %v, %d act values; want nil, true, %d", 3*MaxValues, err, l.NonFinite, len(l.Act), MaxValues+1)
+	}
+	// A syntax error past the cap is still found.
+	cut := zeros[:len(zeros)-1] + ",]"
+	if err := Parse(line(cut, "null"), &l); err == nil {
+		t.Errorf("trailing comma after 10⁷ elements: no error")
+	}
+	// Exactly MaxValues elements are all kept.
+	exact := "[" + strings.Repeat("1,", MaxValues-1) + "1]"
+	if err := Parse(line(exact, "null"), &l); err != nil || len(l.Obs) != MaxValues {
+		t.Errorf("%d elements: error %v, %d kept", MaxValues, err, len(l.Obs))
 	}
 }
