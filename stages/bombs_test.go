@@ -129,8 +129,13 @@ func repeatedGzip(t *testing.T, b byte, n int64, tail []byte) []byte {
 // spaces are one blank line of any length and newlines 10 GiB of empty
 // lines, neither counted (SPEC §1). The valid lines after each bomb are
 // kept, so the reader went through to the end.
+//
+// Under the race detector the bombs are 128 MiB each (raceDetector).
 func TestBombGzip(t *testing.T) {
 	size := int64(1 << 30)
+	if raceDetector {
+		size = 128 << 20
+	}
 	tail := func(unit string) []byte {
 		return []byte("\n" + string(jsonLines(armLine(unit, 1000, ""), armLine(unit, 2000, ""))))
 	}
@@ -140,10 +145,10 @@ func TestBombGzip(t *testing.T) {
 		"newline.jsonl.gz": repeatedGzip(t, '\n', size, tail("l1")),
 	}
 	for k, v := range files {
-		t.Logf("%s: %d bytes of gzip for %d GiB", k, len(v), size>>30)
+		t.Logf("%s: %d bytes of gzip for %d MiB", k, len(v), size>>20)
 	}
 	var m *pipeline.Manifest
-	bounded(t, "3 × 1 GiB of gzip", 5*time.Minute, 512<<20, func() {
+	bounded(t, fmt.Sprintf("3 × %d MiB of gzip", size>>20), 5*time.Minute, 512<<20, func() {
 		m = runPipeline(t, fixtureConfig(1<<20), files)
 	})
 	srcs := []srcWant{
@@ -290,9 +295,12 @@ func TestDimensionCapCoversTheLoader(t *testing.T) {
 // ingest item with its own sealed folder, so the cost is per object:
 // 10⁴ took 52 s through the binary on a shared 2-core machine, most of it
 // waiting on the disk; BenchmarkBombRSS/objects-100k in the root package
-// runs 10⁵.
+// runs 10⁵. Under the race detector it runs 2·10³ (raceDetector).
 func TestBombManyObjects(t *testing.T) {
-	const units, perUnit = 100, 100
+	units, perUnit := int64(100), int64(100)
+	if raceDetector {
+		units = 20
+	}
 	files := make(map[string][]byte, units*perUnit)
 	for u := range units {
 		for i := range perUnit {
@@ -301,14 +309,14 @@ func TestBombManyObjects(t *testing.T) {
 		}
 	}
 	var m *pipeline.Manifest
-	bounded(t, "10⁴ objects", 8*time.Minute, 1<<30, func() {
+	bounded(t, fmt.Sprintf("%d objects", units*perUnit), 8*time.Minute, 1<<30, func() {
 		m = runPipeline(t, fixtureConfig(1<<20), files)
 	})
 	f := m.Funnel
 	// Each unit is one episode of 100 steps (max_gap 1h), each step but
 	// the last with 1 future goal.
 	if f.Objects != units*perUnit || f.Lines != units*perUnit || f.Frames != units*perUnit ||
-		f.Episodes != units || f.Pairs != units*(perUnit-1) || len(m.Sources) != units*perUnit {
+		f.Episodes != units || f.Pairs != units*(perUnit-1) || int64(len(m.Sources)) != units*perUnit {
 		t.Errorf("funnel objects %d lines %d frames %d episodes %d pairs %d, %d sources; want %d %d %d %d %d, %d",
 			f.Objects, f.Lines, f.Frames, f.Episodes, f.Pairs, len(m.Sources),
 			units*perUnit, units*perUnit, units*perUnit, units, units*(perUnit-1), units*perUnit)
