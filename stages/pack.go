@@ -36,6 +36,28 @@ type Pack struct {
 	// GroupImageBytes, when > 0, replaces packGroupImageBytes (for tests
 	// that need the cut without writing 64 MiB of frames).
 	GroupImageBytes int64
+	// MaxRowGroups, when > 0, replaces packMaxRowGroups (for tests that
+	// need the bound without writing 30,000 row groups).
+	MaxRowGroups int64
+}
+
+// packMaxRowGroups bounds the row groups of one shard. A Parquet file holds
+// at most 32,767 row groups (the row group ordinal is a 16-bit integer in
+// the format's footer; from memory), and parquet-go fails past it, part way
+// through a shard. The margin of 2,767 leaves room for the cuts by image
+// bytes (one per 64 MiB of camera frames, 170 GB per shard).
+const packMaxRowGroups = 30_000
+
+// groupRows is the rows per row group of a shard of at most rows rows:
+// parquet.row_group_rows, raised when that would make more than maxGroups
+// row groups. It depends only on the partition's row count, so it is the
+// same whatever the concurrency; with the default of 65,536 it is raised
+// only past 1.9 billion rows.
+func groupRows(configured, rows, maxGroups int64) int64 {
+	if need := (rows + maxGroups - 1) / maxGroups; need > configured {
+		return need
+	}
+	return configured
 }
 
 func (st *Pack) codec(name string) compress.Codec {
@@ -296,10 +318,13 @@ func (st *Pack) Do(ctx context.Context, env *pipeline.Env, it pipeline.Item) (an
 		Steps: map[string]map[int]int64{}, SourceFiles: map[string][]string{}}
 	counts := map[[2]string]*pipeline.Count{}
 	shards := map[[2]string]*shard{} // (table, split)
+	// A shard of a split holds at most the partition's rows of its table.
+	maxGroups := cmp.Or(st.MaxRowGroups, packMaxRowGroups)
+	tableRows := map[string]int64{"frames": in.Episodes.Frames, "pairs": in.Goals.Pairs}
 	options := func(table, split string) []parquet.WriterOption {
 		return []parquet.WriterOption{
 			parquet.Compression(st.codec(cfg.Parquet.Compression)),
-			parquet.MaxRowsPerRowGroup(int64(cfg.Parquet.RowGroupRows)),
+			parquet.MaxRowsPerRowGroup(groupRows(int64(cfg.Parquet.RowGroupRows), tableRows[table], maxGroups)),
 			parquet.CreatedBy("hindcast", pipeline.ToolVersion, ""),
 			parquet.KeyValueMetadata("dataset", cfg.Dataset),
 			parquet.KeyValueMetadata("table", table),
