@@ -59,22 +59,7 @@ parquet: {row_group_rows: 65536}
 		t.Fatalf("funnel %+v, want %d episodes of %d frames", m.Funnel, episodes, steps)
 	}
 	groups := func(table string) string {
-		p := filepath.Join(dir, "out", "pack-groups", "v1", table, "split=train", "part-00000.parquet")
-		f, err := os.Open(p)
-		if err != nil {
-			t.Fatal(err)
-		}
-		defer f.Close()
-		info, _ := f.Stat()
-		pf, err := parquet.OpenFile(f, info.Size())
-		if err != nil {
-			t.Fatal(err)
-		}
-		var rows []string
-		for _, g := range pf.RowGroups() {
-			rows = append(rows, fmt.Sprint(g.NumRows()))
-		}
-		return strings.Join(rows, " ")
+		return rowGroupSizes(t, filepath.Join(dir, "out", "pack-groups", "v1", table, "split=train", "part-00000.parquet"))
 	}
 	if got := groups("frames"); got != "15 15 15 5" {
 		t.Errorf("frames row groups of %s rows, want 15 15 15 5", got)
@@ -131,21 +116,7 @@ parquet: {row_group_rows: 1}
 	}
 	for table, want := range map[string]string{"frames": "5 5 5 5 5 5 5 5 5 3", "pairs": "5 5 5 5 5 5 5 5 4"} {
 		p := filepath.Join(dir, "out", "pack-bound", "v1", table, "split=train", "part-00000.parquet")
-		f, err := os.Open(p)
-		if err != nil {
-			t.Fatal(err)
-		}
-		info, _ := f.Stat()
-		pf, err := parquet.OpenFile(f, info.Size())
-		if err != nil {
-			t.Fatal(err)
-		}
-		var rows []string
-		for _, g := range pf.RowGroups() {
-			rows = append(rows, fmt.Sprint(g.NumRows()))
-		}
-		f.Close()
-		if got := strings.Join(rows, " "); got != want {
+		if got := rowGroupSizes(t, p); got != want {
 			t.Errorf("%s row groups of %s rows, want %s", table, got, want)
 		}
 	}
@@ -159,4 +130,27 @@ parquet: {row_group_rows: 1}
 	if got := groupRows(65536, 1_000_000, packMaxRowGroups); got != 65536 {
 		t.Errorf("groupRows(65536, 1e6) = %d, want 65536 (as configured)", got)
 	}
+}
+
+// rowGroupSizes lists the rows of each row group of the Parquet file at p.
+func rowGroupSizes(t *testing.T, p string) string {
+	t.Helper()
+	f, err := os.Open(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	info, err := f.Stat()
+	if err != nil {
+		t.Fatal(err)
+	}
+	pf, err := parquet.OpenFile(f, info.Size())
+	if err != nil {
+		t.Fatal(err)
+	}
+	var rows []string
+	for _, g := range pf.RowGroups() {
+		rows = append(rows, fmt.Sprint(g.NumRows()))
+	}
+	return strings.Join(rows, " ")
 }
