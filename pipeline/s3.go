@@ -710,10 +710,24 @@ var ErrCredentialsRefused = errors.New("credentials refused")
 var refusedCodes = []string{"InvalidAccessKeyId", "SignatureDoesNotMatch", "InvalidToken", "ExpiredToken",
 	"TokenRefreshRequired", "XAdminUserNotFound"}
 
-// credentialsRefused reports whether the service refused the credentials.
+// credentialsRefused reports whether the service refused the credentials:
+// one of refusedCodes, or a 403 whose error code could not be read. The
+// latter happens on uploads: a server that refuses the signature may answer
+// before it reads the body and close the connection, so the SDK sees the
+// status but no error document (seen with versitygw on PutObject under
+// load); a 403 that names another code (AccessDenied by a policy) is left
+// as it is.
 func credentialsRefused(err error) bool {
 	var ae smithy.APIError
-	return errors.As(err, &ae) && slices.Contains(refusedCodes, ae.ErrorCode())
+	if errors.As(err, &ae) {
+		if slices.Contains(refusedCodes, ae.ErrorCode()) {
+			return true
+		}
+		if c := ae.ErrorCode(); c != "" && c != "Forbidden" {
+			return false
+		}
+	}
+	return isStatus(err, http.StatusForbidden)
 }
 
 // mapS3Error turns "no such key" answers into ErrNotFound and refused
