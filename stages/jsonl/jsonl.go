@@ -488,48 +488,19 @@ func (p *parser) strEscaped(buf *[]byte, start, i int) ([]byte, error) {
 				p.pos = len(b)
 				return nil, p.errAt("an escape character")
 			}
-			e := b[i+1]
-			i += 2
-			switch e {
-			case '"', '\\', '/':
-				out = append(out, e)
-			case 'b':
-				out = append(out, '\b')
-			case 'f':
-				out = append(out, '\f')
-			case 'n':
-				out = append(out, '\n')
-			case 'r':
-				out = append(out, '\r')
-			case 't':
-				out = append(out, '\t')
-			case 'u':
-				r := hex4(b, i)
-				if r < 0 {
-					p.pos = i
-					for p.pos < len(b) && p.pos < i+4 && hexVal(b[p.pos]) >= 0 {
-						p.pos++
-					}
-					return nil, p.errAt("four hex digits after \\u")
+			next, ok := 0, false
+			if out, next, ok = AppendEscape(out, b, i+1); !ok {
+				if b[i+1] != 'u' {
+					p.pos = i + 1
+					return nil, p.errAt("an escape character")
 				}
-				i += 4
-				if utf16.IsSurrogate(r) {
-					r2 := rune(-1)
-					if i+1 < len(b) && b[i] == '\\' && b[i+1] == 'u' {
-						r2 = hex4(b, i+2)
-					}
-					if d := utf16.DecodeRune(r, r2); d != utf8.RuneError {
-						r = d
-						i += 6
-					} else {
-						r = utf8.RuneError
-					}
+				p.pos = i + 2
+				for p.pos < len(b) && p.pos < i+6 && hexVal(b[p.pos]) >= 0 {
+					p.pos++
 				}
-				out = utf8.AppendRune(out, r)
-			default:
-				p.pos = i - 1
-				return nil, p.errAt("an escape character")
+				return nil, p.errAt("four hex digits after \\u")
 			}
+			i = next
 		case c < 0x20:
 			p.pos = i
 			return nil, p.errAt("no unescaped control character in a string")
@@ -548,6 +519,52 @@ func (p *parser) strEscaped(buf *[]byte, start, i int) ([]byte, error) {
 	}
 	p.pos = len(b)
 	return nil, p.errAt("'\"' closing a string")
+}
+
+// AppendEscape appends to out what the escape whose letter is b[i] (the
+// byte after a backslash) stands for (RFC 8259 §7), and returns the index
+// after it; ok is false for an unknown letter or a \u without four hex
+// digits. A surrogate pair written as two \u escapes is one character; a
+// lone surrogate is U+FFFD, and what follows it is read on its own, as
+// encoding/json does. It is exported so that every JSON reader of hindcast
+// (JSON Lines, JSON messages in recordings) unescapes strings the same way.
+func AppendEscape(out, b []byte, i int) (_ []byte, next int, ok bool) {
+	e := b[i]
+	i++
+	switch e {
+	case '"', '\\', '/':
+		return append(out, e), i, true
+	case 'b':
+		return append(out, '\b'), i, true
+	case 'f':
+		return append(out, '\f'), i, true
+	case 'n':
+		return append(out, '\n'), i, true
+	case 'r':
+		return append(out, '\r'), i, true
+	case 't':
+		return append(out, '\t'), i, true
+	case 'u':
+		r := hex4(b, i)
+		if r < 0 {
+			return out, i, false
+		}
+		i += 4
+		if utf16.IsSurrogate(r) {
+			r2 := rune(-1)
+			if i+1 < len(b) && b[i] == '\\' && b[i+1] == 'u' {
+				r2 = hex4(b, i+2)
+			}
+			if d := utf16.DecodeRune(r, r2); d != utf8.RuneError {
+				r = d
+				i += 6
+			} else {
+				r = utf8.RuneError
+			}
+		}
+		return utf8.AppendRune(out, r), i, true
+	}
+	return out, i, false
 }
 
 // hex4 decodes four hex digits at b[i:], or returns -1.

@@ -6,8 +6,6 @@ import (
 	"fmt"
 	"math"
 	"strconv"
-	"unicode/utf16"
-	"unicode/utf8"
 
 	"google.golang.org/protobuf/proto"
 	"google.golang.org/protobuf/reflect/protodesc"
@@ -16,6 +14,7 @@ import (
 	"google.golang.org/protobuf/types/dynamicpb"
 
 	"hindcast/pipeline"
+	"hindcast/stages/jsonl"
 	"hindcast/stages/recording/mcapread"
 	"hindcast/stages/recording/ros2msg"
 )
@@ -508,37 +507,8 @@ func (j *jsonParser) str() (string, error) {
 			if j.i >= len(j.p) {
 				return "", j.errf("unterminated string")
 			}
-			e := j.p[j.i]
-			j.i++
-			switch e {
-			case '"', '\\', '/':
-				b = append(b, e)
-			case 'b':
-				b = append(b, '\b')
-			case 'f':
-				b = append(b, '\f')
-			case 'n':
-				b = append(b, '\n')
-			case 'r':
-				b = append(b, '\r')
-			case 't':
-				b = append(b, '\t')
-			case 'u':
-				r, ok := j.hex4()
-				if !ok {
-					return "", j.errf("bad \\u escape")
-				}
-				if utf16.IsSurrogate(r) {
-					r2 := rune(-1)
-					if j.lit(`\u`) {
-						if r2, ok = j.hex4(); !ok {
-							return "", j.errf("bad \\u escape")
-						}
-					}
-					r = utf16.DecodeRune(r, r2)
-				}
-				b = utf8.AppendRune(b, r)
-			default:
+			var ok bool
+			if b, j.i, ok = jsonl.AppendEscape(b, j.p, j.i); !ok {
 				return "", j.errf("bad escape")
 			}
 		default:
@@ -546,16 +516,4 @@ func (j *jsonParser) str() (string, error) {
 			j.i++
 		}
 	}
-}
-
-func (j *jsonParser) hex4() (rune, bool) {
-	if len(j.p)-j.i < 4 {
-		return 0, false
-	}
-	n, err := strconv.ParseUint(string(j.p[j.i:j.i+4]), 16, 32)
-	if err != nil {
-		return 0, false
-	}
-	j.i += 4
-	return rune(n), true
 }

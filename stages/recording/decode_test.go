@@ -343,3 +343,27 @@ func BenchmarkAssemble(b *testing.B) {
 	}
 	b.ReportMetric(float64(ticks)/b.Elapsed().Seconds(), "ticks/s")
 }
+
+// TestParseJSONStringsAsEncodingJSON: strings of JSON messages unescape as
+// encoding/json does (RFC 8259 §7): a surrogate pair is one character, a
+// lone surrogate is U+FFFD and the escape after it is kept on its own.
+func TestParseJSONStringsAsEncodingJSON(t *testing.T) {
+	for _, in := range []string{`"\ud83d\ude00"`, `"\ud800\u0041"`, `"\udc00x"`, `"a\/b\"\\\b\f\r\t"`} {
+		got, err := parseJSON([]byte(in))
+		if err != nil {
+			t.Fatalf("%s: %v", in, err)
+		}
+		var want string
+		if err := json.Unmarshal([]byte(in), &want); err != nil {
+			t.Fatal(err)
+		}
+		if got != want {
+			t.Errorf("%s: %q, encoding/json gives %q", in, got, want)
+		}
+	}
+	for _, bad := range []string{`"\x"`, `"\u12"`, `"\u12g4"`} {
+		if _, err := parseJSON([]byte(bad)); err == nil {
+			t.Errorf("%s parsed", bad)
+		}
+	}
+}
